@@ -1,0 +1,390 @@
+//! The wire contract: every request and response body of the service, defined once and used by
+//! both the service (which deserialises requests and serialises responses) and the client.
+//!
+//! Request types reject unknown fields, so a typo is an error rather than a silently ignored
+//! option. Response types accept unknown fields, so an older client keeps working against a newer
+//! service.
+
+use std::collections::BTreeMap;
+
+use serde::{Deserialize, Deserializer, Serialize};
+
+#[cfg(feature = "schema")]
+use utoipa::ToSchema;
+
+/// A number as the client wrote it: a JSON number (kept as its exact decimal text) or a string
+/// such as `"3"`, `"0.125"`, `"2.5e-3"`, `"1/6"` or `"0.6%"`.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+#[cfg_attr(
+    feature = "schema",
+    schema(
+        description = "An exact number: a JSON number (read from its decimal text, so 0.1 is 1/10) \
+                       or a string holding an integer, decimal, scientific number, fraction or \
+                       percentage: \"3\", \"0.125\", \"2.5e-3\", \"1/6\", \"0.6%\".",
+        example = json!("1/40")
+    )
+)]
+#[serde(untagged)]
+pub enum Value {
+    /// A JSON number, kept as the text it was written with.
+    #[cfg_attr(feature = "schema", schema(value_type = f64))]
+    Number(serde_json::Number),
+    /// A number written as a string.
+    Text(String),
+}
+
+impl Value {
+    /// The text of the value exactly as it was written (without JSON quotes).
+    #[must_use]
+    pub fn text(&self) -> String {
+        match self {
+            Value::Number(n) => n.to_string(),
+            Value::Text(s) => s.clone(),
+        }
+    }
+}
+
+impl From<&str> for Value {
+    fn from(s: &str) -> Self {
+        Value::Text(s.to_owned())
+    }
+}
+
+impl From<String> for Value {
+    fn from(s: String) -> Self {
+        Value::Text(s)
+    }
+}
+
+impl From<i64> for Value {
+    fn from(n: i64) -> Self {
+        Value::Number(n.into())
+    }
+}
+
+impl<'de> Deserialize<'de> for Value {
+    fn deserialize<D: Deserializer<'de>>(deserializer: D) -> Result<Self, D::Error> {
+        // Going through serde_json::Value keeps a JSON number's decimal text (the workspace
+        // enables serde_json's `arbitrary_precision`), which serde's untagged enums would lose.
+        match serde_json::Value::deserialize(deserializer)? {
+            serde_json::Value::Number(n) => Ok(Value::Number(n)),
+            serde_json::Value::String(s) => Ok(Value::Text(s)),
+            other => Err(serde::de::Error::custom(format!(
+                "expected a number or a string holding a number, found {}",
+                json_kind(&other)
+            ))),
+        }
+    }
+}
+
+fn json_kind(value: &serde_json::Value) -> &'static str {
+    match value {
+        serde_json::Value::Null => "null",
+        serde_json::Value::Bool(_) => "a boolean",
+        serde_json::Value::Number(_) => "a number",
+        serde_json::Value::String(_) => "a string",
+        serde_json::Value::Array(_) => "an array",
+        serde_json::Value::Object(_) => "an object",
+    }
+}
+
+/// Named cost dimensions and their amounts, e.g. `{"gold": 160, "ms": "250"}`.
+pub type Cost = BTreeMap<String, Value>;
+
+/// Which arithmetic to solve in.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize, Deserialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+#[serde(rename_all = "lowercase")]
+pub enum Arithmetic {
+    /// Exact when the chain is small enough to finish well inside the budget, float otherwise.
+    #[default]
+    Auto,
+    /// Exact rational arithmetic: answers such as `1/3`.
+    Exact,
+    /// Double-precision floating point, with the residual reported.
+    Float,
+}
+
+/// The arithmetic a solve actually used.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+#[serde(rename_all = "lowercase")]
+pub enum UsedArithmetic {
+    /// Exact rational arithmetic; every number carries its `exact` form.
+    Exact,
+    /// Double-precision floating point.
+    Float,
+}
+
+/// A metric family to report.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Serialize, Deserialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+#[serde(rename_all = "lowercase")]
+pub enum Report {
+    /// Probability of ending in each absorbing state, and of never being absorbed.
+    Absorption,
+    /// Mean and variance of the number of steps, and the mean given each outcome.
+    Steps,
+    /// Expected visits to each transient state (the start counts as a visit).
+    Visits,
+}
+
+/// A state, declared by id alone or with details.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+#[serde(untagged)]
+pub enum StateSpec {
+    /// Just the id.
+    Id(String),
+    /// The id with details.
+    Detailed(StateDetail),
+}
+
+/// A declared state with details.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+#[serde(deny_unknown_fields)]
+pub struct StateDetail {
+    /// The state's id.
+    pub id: String,
+    /// Declares the state absorbing (it must then have no transitions to other states).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub absorbing: Option<bool>,
+    /// Cost paid on every visit to the state, the start included.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub cost: Option<Cost>,
+}
+
+/// One transition; exactly one of `probability` and `weight` must be given.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+#[serde(deny_unknown_fields)]
+pub struct TransitionSpec {
+    /// Source state id.
+    pub from: String,
+    /// Target state id.
+    pub to: String,
+    /// Probability of taking this transition from `from`; the probabilities out of one state must
+    /// sum to exactly 1.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub probability: Option<Value>,
+    /// Non-negative weight, normalised over the transitions out of `from`.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub weight: Option<Value>,
+    /// Cost paid each time the transition is taken.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub cost: Option<Cost>,
+}
+
+/// Where the walk starts: one state, or a distribution over states summing to 1.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+#[serde(untagged)]
+pub enum StartSpec {
+    /// Start in this state.
+    State(String),
+    /// Start in each state with the given probability.
+    Distribution(BTreeMap<String, Value>),
+}
+
+/// An absorbing Markov chain as the client writes it.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+#[serde(deny_unknown_fields)]
+pub struct ChainSpec {
+    /// Optional declarations; states are also declared by appearing in a transition.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub states: Vec<StateSpec>,
+    /// The transitions. A state with none, or with only a self-loop, is absorbing.
+    pub transitions: Vec<TransitionSpec>,
+    /// Where the walk starts.
+    pub start: StartSpec,
+}
+
+fn default_report() -> Vec<Report> {
+    vec![Report::Absorption, Report::Steps]
+}
+
+/// Body of `POST /v1/solve`.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+#[serde(deny_unknown_fields)]
+pub struct SolveRequest {
+    /// The chain to solve.
+    pub chain: ChainSpec,
+    /// Arithmetic to use (default `auto`).
+    #[serde(default)]
+    pub arithmetic: Arithmetic,
+    /// Metric families to report (default `["absorption", "steps"]`).
+    #[serde(default = "default_report")]
+    pub report: Vec<Report>,
+    /// Also report every metric from each transient state (default false).
+    #[serde(default)]
+    pub by_state: bool,
+}
+
+impl SolveRequest {
+    /// A request with the defaults: `auto` arithmetic, absorption and steps, start only.
+    #[must_use]
+    pub fn new(chain: ChainSpec) -> Self {
+        SolveRequest {
+            chain,
+            arithmetic: Arithmetic::Auto,
+            report: default_report(),
+            by_state: false,
+        }
+    }
+}
+
+/// A computed number: always a float `value`, plus the `exact` rational when the run was exact.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+pub struct Number {
+    /// The value as a double (rounded when the exact value is not representable).
+    pub value: f64,
+    /// The exact value as `"n/d"` or `"n"`, present only when exact arithmetic was used.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub exact: Option<String>,
+}
+
+/// Schema of a map from ids to numbers that may be `null`.
+#[cfg(feature = "schema")]
+fn nullable_number_map() -> utoipa::openapi::schema::Object {
+    use utoipa::openapi::schema::{ObjectBuilder, OneOfBuilder, Type};
+    use utoipa::openapi::{Ref, RefOr, Schema};
+    let value = OneOfBuilder::new()
+        .item(Ref::from_schema_name("Number"))
+        .item(ObjectBuilder::new().schema_type(Type::Null))
+        .build();
+    ObjectBuilder::new()
+        .schema_type(Type::Object)
+        .additional_properties(Some(RefOr::T(Schema::OneOf(value))))
+        .build()
+}
+
+/// Step statistics; a mean or variance is `null` where it is infinite (the walk can be trapped).
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+pub struct Steps {
+    /// Expected number of steps to absorption; `null` when the walk can be trapped.
+    pub mean: Option<Number>,
+    /// Variance of the number of steps; `null` when the walk can be trapped.
+    pub variance: Option<Number>,
+    /// Expected steps given that the walk ends in each absorbing state; `null` for an outcome
+    /// that cannot happen.
+    #[cfg_attr(feature = "schema", schema(schema_with = nullable_number_map))]
+    pub mean_given: BTreeMap<String, Option<Number>>,
+}
+
+/// Metrics from one starting point (the request's start, or one state under `by_state`).
+#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+pub struct Metrics {
+    /// Probability of ending in each absorbing state (every absorbing state listed).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub absorption: Option<BTreeMap<String, Number>>,
+    /// Probability of never reaching an absorbing state.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub never_absorbed: Option<Number>,
+    /// Step statistics.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub steps: Option<Steps>,
+    /// Expected visits to each transient state, the start counting as one; `null` where infinite.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    #[cfg_attr(feature = "schema", schema(schema_with = nullable_number_map))]
+    pub visits: Option<BTreeMap<String, Option<Number>>>,
+}
+
+/// How the answer was computed.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+pub struct SolverInfo {
+    /// The method used, e.g. `"exact sparse elimination"`.
+    pub method: String,
+    /// Number of transient states in the linear systems solved.
+    pub transient_states: usize,
+    /// Number of transitions with positive probability.
+    pub transitions: usize,
+    /// Wall-clock time of the computation in milliseconds.
+    pub elapsed_ms: f64,
+    /// Largest absolute residual `|(I - Q) x - b|` over the systems solved (0 when exact).
+    pub max_residual: f64,
+}
+
+/// Body of a successful `POST /v1/solve`.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+pub struct SolveResponse {
+    /// The arithmetic used.
+    pub arithmetic: UsedArithmetic,
+    /// The metrics from the start.
+    #[serde(flatten)]
+    pub metrics: Metrics,
+    /// With `by_state`: the metrics from each transient state.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub by_state: Option<BTreeMap<String, Metrics>>,
+    /// Things worth knowing about the chain or the answer (summed duplicates, trapping states).
+    #[serde(default)]
+    pub warnings: Vec<String>,
+    /// How the answer was computed.
+    pub solver: SolverInfo,
+}
+
+/// One problem inside a request, located by a JSON pointer (RFC 6901).
+#[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+pub struct ProblemItem {
+    /// Where in the request body the problem is, e.g. `/chain/transitions/3/probability`.
+    pub pointer: String,
+    /// What is wrong there.
+    pub detail: String,
+}
+
+/// An RFC 9457 problem document (`application/problem+json`).
+#[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+pub struct Problem {
+    /// A URI reference naming the problem type.
+    #[serde(rename = "type")]
+    pub problem_type: String,
+    /// A short summary of the problem type.
+    pub title: String,
+    /// The HTTP status code.
+    pub status: u16,
+    /// What went wrong with this request.
+    pub detail: String,
+    /// Every problem found, each with its location.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub errors: Vec<ProblemItem>,
+}
+
+impl<'de> Deserialize<'de> for StateSpec {
+    fn deserialize<D: Deserializer<'de>>(deserializer: D) -> Result<Self, D::Error> {
+        match serde_json::Value::deserialize(deserializer)? {
+            serde_json::Value::String(id) => Ok(StateSpec::Id(id)),
+            object @ serde_json::Value::Object(_) => serde_json::from_value(object)
+                .map(StateSpec::Detailed)
+                .map_err(serde::de::Error::custom),
+            other => Err(serde::de::Error::custom(format!(
+                "expected a state id or an object {{\"id\", \"absorbing\", \"cost\"}}, found {}",
+                json_kind(&other)
+            ))),
+        }
+    }
+}
+
+impl<'de> Deserialize<'de> for StartSpec {
+    fn deserialize<D: Deserializer<'de>>(deserializer: D) -> Result<Self, D::Error> {
+        match serde_json::Value::deserialize(deserializer)? {
+            serde_json::Value::String(id) => Ok(StartSpec::State(id)),
+            object @ serde_json::Value::Object(_) => serde_json::from_value(object)
+                .map(StartSpec::Distribution)
+                .map_err(serde::de::Error::custom),
+            other => Err(serde::de::Error::custom(format!(
+                "expected a state id or a distribution {{\"state\": probability, ...}}, found {}",
+                json_kind(&other)
+            ))),
+        }
+    }
+}

@@ -1,0 +1,468 @@
+//! From the wire's `ChainSpec` to a validated [`Chain`], collecting every problem with its JSON
+//! pointer rather than stopping at the first.
+
+use std::collections::{BTreeMap, HashMap};
+
+use num_rational::BigRational;
+use num_traits::{One, Signed, Zero};
+use oddsmith_client::types::{ChainSpec, Cost, StartSpec, StateSpec, Value};
+
+use super::chain::Chain;
+use super::value::{exact_text, parse_exact};
+
+/// One problem found in a request, located by a JSON pointer (RFC 6901).
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct Issue {
+    /// Where the problem is, e.g. `/chain/transitions/3/probability`.
+    pub pointer: String,
+    /// What is wrong there.
+    pub detail: String,
+}
+
+/// Escapes one reference token of a JSON pointer (`~` as `~0`, `/` as `~1`).
+#[must_use]
+pub fn pointer_token(token: &str) -> String {
+    token.replace('~', "~0").replace('/', "~1")
+}
+
+/// Collects issues while validating.
+#[derive(Default)]
+struct Issues(Vec<Issue>);
+
+impl Issues {
+    fn add(&mut self, pointer: impl Into<String>, detail: impl Into<String>) {
+        self.0.push(Issue {
+            pointer: pointer.into(),
+            detail: detail.into(),
+        });
+    }
+
+    /// Parses a value, recording an issue (and returning `None`) when it is not a number.
+    fn number(&mut self, value: &Value, pointer: String) -> Option<BigRational> {
+        match parse_exact(&value.text()) {
+            Ok(number) => Some(number),
+            Err(detail) => {
+                self.add(pointer, detail);
+                None
+            }
+        }
+    }
+
+    /// Parses a probability in [0, 1].
+    fn probability(&mut self, value: &Value, pointer: String) -> Option<BigRational> {
+        let p = self.number(value, pointer.clone())?;
+        if p.is_negative() || p > BigRational::one() {
+            self.add(
+                pointer,
+                format!("a probability must lie in [0, 1]; got {}", exact_text(&p)),
+            );
+            return None;
+        }
+        Some(p)
+    }
+
+    fn costs(&mut self, cost: Option<&Cost>, pointer: &str) {
+        for (dimension, amount) in cost.into_iter().flatten() {
+            let at = format!("{pointer}/cost/{}", pointer_token(dimension));
+            if dimension.trim().is_empty() {
+                self.add(at.clone(), "a cost dimension needs a non-empty name");
+            }
+            self.number(amount, at);
+        }
+    }
+}
+
+#[derive(Clone, Copy, PartialEq, Eq)]
+enum RowKind {
+    Probability,
+    Weight,
+}
+
+impl RowKind {
+    fn name(self) -> &'static str {
+        match self {
+            RowKind::Probability => "probabilities",
+            RowKind::Weight => "weights",
+        }
+    }
+}
+
+/// Everything said about the transitions out of one state.
+#[derive(Default)]
+struct Row {
+    kind: Option<(RowKind, usize)>,
+    /// Some value in the row was invalid (already reported): skip the row's own checks.
+    broken: bool,
+    /// Target -> (summed value, indices of the transitions that gave it).
+    targets: BTreeMap<usize, (BigRational, Vec<usize>)>,
+}
+
+/// Validates a chain description.
+///
+/// # Errors
+/// Every problem found, each with a JSON pointer below `/chain`.
+pub fn validate(spec: &ChainSpec) -> Result<Chain, Vec<Issue>> {
+    let mut issues = Issues::default();
+    let mut ids: Vec<String> = Vec::new();
+    let mut index: HashMap<String, usize> = HashMap::new();
+    let mut intern = |id: &str, ids: &mut Vec<String>| -> usize {
+        *index.entry(id.to_owned()).or_insert_with(|| {
+            ids.push(id.to_owned());
+            ids.len() - 1
+        })
+    };
+
+    // Declared states, in order.
+    let mut declared_absorbing: HashMap<usize, usize> = HashMap::new();
+    let mut declared_at: HashMap<usize, usize> = HashMap::new();
+    for (k, state) in spec.states.iter().enumerate() {
+        let at = format!("/chain/states/{k}");
+        let (id, absorbing, cost) = match state {
+            StateSpec::Id(id) => (id, None, None),
+            StateSpec::Detailed(d) => (&d.id, d.absorbing, d.cost.as_ref()),
+        };
+        if id.is_empty() {
+            issues.add(at.clone(), "a state id must not be empty");
+            continue;
+        }
+        let i = intern(id, &mut ids);
+        if let Some(first) = declared_at.insert(i, k) {
+            issues.add(
+                at.clone(),
+                format!("state '{id}' is already declared at /chain/states/{first}"),
+            );
+        }
+        if absorbing == Some(true) {
+            declared_absorbing.insert(i, k);
+        }
+        issues.costs(cost, &at);
+    }
+
+    // Transitions, grouped by source state.
+    let mut rows: HashMap<usize, Row> = HashMap::new();
+    for (k, t) in spec.transitions.iter().enumerate() {
+        let at = format!("/chain/transitions/{k}");
+        for (field, id) in [("from", &t.from), ("to", &t.to)] {
+            if id.is_empty() {
+                issues.add(format!("{at}/{field}"), "a state id must not be empty");
+            }
+        }
+        issues.costs(t.cost.as_ref(), &at);
+        if t.from.is_empty() || t.to.is_empty() {
+            continue;
+        }
+        let from = intern(&t.from, &mut ids);
+        let to = intern(&t.to, &mut ids);
+        let (kind, value) = match (&t.probability, &t.weight) {
+            (Some(p), None) => (
+                RowKind::Probability,
+                issues.probability(p, format!("{at}/probability")),
+            ),
+            (None, Some(w)) => {
+                let weight = issues.number(w, format!("{at}/weight"));
+                let weight = weight.filter(|w| {
+                    let ok = !w.is_negative();
+                    if !ok {
+                        issues.add(
+                            format!("{at}/weight"),
+                            format!("a weight must not be negative; got {}", exact_text(w)),
+                        );
+                    }
+                    ok
+                });
+                (RowKind::Weight, weight)
+            }
+            _ => {
+                issues.add(at, "give exactly one of `probability` or `weight`");
+                continue;
+            }
+        };
+        let row = rows.entry(from).or_default();
+        match row.kind {
+            None => row.kind = Some((kind, k)),
+            Some((first, first_at)) if first != kind => {
+                issues.add(
+                    at.clone(),
+                    format!(
+                        "transitions out of '{}' mix {} (first at /chain/transitions/{first_at}) \
+                         and {}; use one kind per state",
+                        t.from,
+                        first.name(),
+                        kind.name()
+                    ),
+                );
+                row.broken = true;
+                continue;
+            }
+            Some(_) => {}
+        }
+        let Some(value) = value else {
+            row.broken = true;
+            continue;
+        };
+        {
+            let entry = row
+                .targets
+                .entry(to)
+                .or_insert_with(|| (BigRational::zero(), Vec::new()));
+            entry.0 += value;
+            entry.1.push(k);
+        }
+    }
+
+    let n = ids.len();
+    if n == 0 {
+        issues.add("/chain", "the chain has no states: give at least one transition");
+    }
+
+    // Per-state checks, building the sparse rows.
+    let mut warnings = Vec::new();
+    let mut absorbing = vec![false; n];
+    let mut row_start = Vec::with_capacity(n + 1);
+    let mut targets = Vec::new();
+    let mut probabilities = Vec::new();
+    for (state, id) in ids.iter().enumerate() {
+        row_start.push(targets.len());
+        let Some(row) = rows.remove(&state) else {
+            absorbing[state] = true;
+            continue;
+        };
+        let (kind, first_at) = row.kind.expect("a row exists only once a transition set its kind");
+        if row.broken {
+            continue;
+        }
+        for (target, (_, sources)) in &row.targets {
+            if sources.len() > 1 {
+                let list: Vec<String> = sources.iter().map(|s| s.to_string()).collect();
+                warnings.push(format!(
+                    "transitions {} all go from '{id}' to '{}'; their {} were summed",
+                    list.join(", "),
+                    ids[*target],
+                    kind.name()
+                ));
+            }
+        }
+        let total: BigRational = row.targets.values().map(|(v, _)| v.clone()).sum();
+        let row_at = format!("/chain/transitions/{first_at}");
+        let sources = || {
+            let mut all: Vec<usize> = row.targets.values().flat_map(|(_, s)| s.clone()).collect();
+            all.sort_unstable();
+            all.iter().map(|s| s.to_string()).collect::<Vec<_>>().join(", ")
+        };
+        match kind {
+            RowKind::Probability if !total.is_one() => {
+                issues.add(
+                    row_at,
+                    format!(
+                        "probabilities out of '{id}' sum to {} (≈ {}), not 1 (transitions {}); \
+                         write repeating decimals as fractions such as \"1/3\", or use weights",
+                        exact_text(&total),
+                        super::value::to_f64(&total),
+                        sources()
+                    ),
+                );
+                continue;
+            }
+            RowKind::Weight if total.is_zero() => {
+                issues.add(
+                    row_at,
+                    format!(
+                        "weights out of '{id}' sum to 0 (transitions {}); at least one must be \
+                         positive",
+                        sources()
+                    ),
+                );
+                continue;
+            }
+            _ => {}
+        }
+        let leaves = row
+            .targets
+            .iter()
+            .any(|(&target, (v, _))| target != state && !v.is_zero());
+        if !leaves {
+            // Only a self-loop (possibly beside zero-probability edges): absorbing by rule.
+            absorbing[state] = true;
+            continue;
+        }
+        if let Some(k) = declared_absorbing.get(&state) {
+            issues.add(
+                format!("/chain/states/{k}/absorbing"),
+                format!(
+                    "'{id}' is declared absorbing but has transitions to other states \
+                     (transitions {})",
+                    sources()
+                ),
+            );
+        }
+        for (target, (value, _)) in row.targets {
+            if !value.is_zero() {
+                targets.push(target);
+                probabilities.push(value / &total);
+            }
+        }
+    }
+    row_start.push(targets.len());
+
+    let start = validate_start(&spec.start, &ids, &mut issues);
+
+    if issues.0.is_empty() {
+        Ok(Chain {
+            ids,
+            absorbing,
+            row_start,
+            targets,
+            probabilities,
+            start,
+            warnings,
+        })
+    } else {
+        Err(issues.0)
+    }
+}
+
+fn validate_start(start: &StartSpec, ids: &[String], issues: &mut Issues) -> Vec<(usize, BigRational)> {
+    let find = |id: &str| ids.iter().position(|known| known == id);
+    let unknown = |id: &str| {
+        format!("unknown state '{id}': a start state must be declared or appear in a transition")
+    };
+    match start {
+        StartSpec::State(id) => match find(id) {
+            Some(i) => vec![(i, BigRational::one())],
+            None => {
+                issues.add("/chain/start", unknown(id));
+                Vec::new()
+            }
+        },
+        StartSpec::Distribution(weights) => {
+            if weights.is_empty() {
+                issues.add("/chain/start", "a start distribution needs at least one state");
+                return Vec::new();
+            }
+            let mut total = BigRational::zero();
+            let mut distribution = Vec::new();
+            for (id, value) in weights {
+                let at = format!("/chain/start/{}", pointer_token(id));
+                let p = issues.probability(value, at.clone());
+                match find(id) {
+                    None => issues.add(at, unknown(id)),
+                    Some(i) => {
+                        if let Some(p) = p {
+                            total += &p;
+                            if !p.is_zero() {
+                                distribution.push((i, p));
+                            }
+                        }
+                    }
+                }
+            }
+            if !total.is_one() && issues.0.is_empty() {
+                issues.add(
+                    "/chain/start",
+                    format!(
+                        "start probabilities sum to {}, not 1",
+                        exact_text(&total)
+                    ),
+                );
+            }
+            distribution.sort_by_key(|(i, _)| *i);
+            distribution
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use serde_json::json;
+
+    fn check(chain: serde_json::Value) -> Result<Chain, Vec<Issue>> {
+        validate(&serde_json::from_value(chain).unwrap())
+    }
+
+    fn pointers(issues: &[Issue]) -> Vec<&str> {
+        issues.iter().map(|i| i.pointer.as_str()).collect()
+    }
+
+    #[test]
+    fn infers_states_and_absorbing_ones() {
+        let chain = check(json!({
+            "states": ["chest", {"id": "vault", "absorbing": true}],
+            "transitions": [
+                {"from": "chest", "to": "sword", "probability": "1/40"},
+                {"from": "chest", "to": "chest", "probability": "39/40"},
+                {"from": "sword", "to": "sword", "probability": 1}
+            ],
+            "start": "chest"
+        }))
+        .unwrap();
+        assert_eq!(chain.ids, ["chest", "vault", "sword"]);
+        assert_eq!(chain.absorbing, [false, true, true]);
+        assert_eq!(chain.transition_count(), 2);
+    }
+
+    #[test]
+    fn normalises_weights_and_sums_repeated_pairs_with_a_warning() {
+        let chain = check(json!({
+            "transitions": [
+                {"from": "a", "to": "b", "weight": 1},
+                {"from": "a", "to": "c", "weight": "2"},
+                {"from": "a", "to": "b", "weight": 1}
+            ],
+            "start": "a"
+        }))
+        .unwrap();
+        let row: Vec<String> = chain.row(0).map(|(_, p)| exact_text(p)).collect();
+        assert_eq!(row, ["1/2", "1/2"]);
+        assert_eq!(chain.warnings.len(), 1);
+        assert!(chain.warnings[0].contains("transitions 0, 2"));
+    }
+
+    #[test]
+    fn collects_every_problem_with_its_pointer() {
+        let issues = check(json!({
+            "states": [{"id": "done", "absorbing": true}, "done"],
+            "transitions": [
+                {"from": "a", "to": "b", "probability": "0.3"},
+                {"from": "a", "to": "c", "probability": "0.3"},
+                {"from": "b", "to": "c", "probability": "1.5"},
+                {"from": "c", "to": "a", "weight": -1},
+                {"from": "c", "to": "b", "probability": "1"},
+                {"from": "done", "to": "a", "probability": "1"},
+                {"from": "x", "to": "y"}
+            ],
+            "start": "nowhere"
+        }))
+        .unwrap_err();
+        assert_eq!(
+            pointers(&issues),
+            [
+                "/chain/states/1",
+                "/chain/transitions/2/probability",
+                "/chain/transitions/3/weight",
+                "/chain/transitions/4",
+                "/chain/transitions/6",
+                "/chain/states/0/absorbing",
+                "/chain/transitions/0",
+                "/chain/start",
+            ]
+        );
+        assert!(issues[6].detail.contains("sum to 3/5"));
+    }
+
+    #[test]
+    fn checks_start_distributions() {
+        let issues = check(json!({
+            "transitions": [{"from": "a/b", "to": "c", "probability": 1}],
+            "start": {"a/b": "1/2", "c": "1/3", "z": "1/6"}
+        }))
+        .unwrap_err();
+        assert_eq!(pointers(&issues), ["/chain/start/z"]);
+        let issues = check(json!({
+            "transitions": [{"from": "a", "to": "c", "probability": 1}],
+            "start": {"a": "1/2", "c": "1/3"}
+        }))
+        .unwrap_err();
+        assert!(issues[0].detail.contains("5/6"));
+    }
+}
