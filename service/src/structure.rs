@@ -72,12 +72,16 @@ impl Structure {
                 trap_class_of[s] = Some(k);
             }
         }
-        let transient: Vec<usize> = (0..n).filter(|&s| kind[s] == StateKind::Transient).collect();
+        let transient: Vec<usize> = (0..n)
+            .filter(|&s| kind[s] == StateKind::Transient)
+            .collect();
         let mut position = vec![None; n];
         for (p, &s) in transient.iter().enumerate() {
             position[s] = Some(p);
         }
-        let absorbing = (0..n).filter(|&s| kind[s] == StateKind::Absorbing).collect();
+        let absorbing = (0..n)
+            .filter(|&s| kind[s] == StateKind::Absorbing)
+            .collect();
         Structure {
             kind,
             transient,
@@ -174,7 +178,10 @@ mod tests {
         .unwrap();
         let s = Structure::of(&chain);
         use StateKind::*;
-        assert_eq!(s.kind, [Transient, Transient, Absorbing, Trapped, Trapped, Absorbing]);
+        assert_eq!(
+            s.kind,
+            [Transient, Transient, Absorbing, Trapped, Trapped, Absorbing]
+        );
         assert_eq!(s.transient, [0, 1]);
         assert_eq!(s.trap_classes, [vec![3, 4]]);
         assert_eq!(s.absorbing, [2, 5]);
@@ -184,7 +191,9 @@ mod tests {
     fn handles_a_long_path_without_recursion() {
         let n = 200_000;
         let transitions: Vec<_> = (0..n)
-            .map(|i| json!({"from": format!("s{i}"), "to": format!("s{}", i + 1), "probability": 1}))
+            .map(
+                |i| json!({"from": format!("s{i}"), "to": format!("s{}", i + 1), "probability": 1}),
+            )
             .collect();
         let chain = validate(
             &serde_json::from_value(json!({"transitions": transitions, "start": "s0"})).unwrap(),

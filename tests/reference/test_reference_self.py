@@ -156,3 +156,30 @@ def test_json_numbers_are_read_from_their_decimal_text():
 
     assert chain.rows["a"]["b"] == Rational(1, 10)
     assert solve_exact(chain)["steps"]["mean"] == 10
+
+
+def test_reference_reproduces_closed_forms():
+    """The reference agrees with the published formulas used in test_closed_forms."""
+    import json
+    from fractions import Fraction
+
+    from sympy import Rational, harmonic
+
+    from reference import parse_chain
+    from test_closed_forms import collector_chain, ruin_chain, ruin_closed_form, run_chain
+
+    def ref(chain):
+        return solve_exact(parse_chain(json.loads(json.dumps(chain))))
+
+    for p, a, N in [(Fraction(2, 5), 3, 10), (Fraction(1, 2), 4, 9), (Fraction(9, 10), 1, 5)]:
+        ruin, duration = ruin_closed_form(p, a, N)
+        got = ref(ruin_chain(p, a, N))
+        assert got["absorption"]["c0"] == ruin and got["steps"]["mean"] == duration
+    for p, r in [(Rational(1, 2), 3), (Rational(2, 3), 4)]:
+        x = (1 - p) * p**r
+        got = ref(run_chain(Fraction(int(p.p), int(p.q)), r))
+        assert got["steps"]["mean"] == (1 - p**r) / x
+        assert got["steps"]["variance"] == 1 / x**2 - (2 * r + 1) / x - p / (1 - p) ** 2
+    got = ref(collector_chain(6))
+    assert got["steps"]["mean"] == 6 * harmonic(6)
+    assert got["steps"]["variance"] == 36 * harmonic(6, 2) - 6 * harmonic(6)

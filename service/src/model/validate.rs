@@ -212,7 +212,10 @@ pub fn validate(spec: &ChainSpec) -> Result<Chain, Vec<Issue>> {
 
     let n = ids.len();
     if n == 0 {
-        issues.add("/chain", "the chain has no states: give at least one transition");
+        issues.add(
+            "/chain",
+            "the chain has no states: give at least one transition",
+        );
     }
 
     // Per-state checks, building the sparse rows.
@@ -227,7 +230,9 @@ pub fn validate(spec: &ChainSpec) -> Result<Chain, Vec<Issue>> {
             absorbing[state] = true;
             continue;
         };
-        let (kind, first_at) = row.kind.expect("a row exists only once a transition set its kind");
+        let (kind, first_at) = row
+            .kind
+            .expect("a row exists only once a transition set its kind");
         if row.broken {
             continue;
         }
@@ -247,7 +252,10 @@ pub fn validate(spec: &ChainSpec) -> Result<Chain, Vec<Issue>> {
         let sources = || {
             let mut all: Vec<usize> = row.targets.values().flat_map(|(_, s)| s.clone()).collect();
             all.sort_unstable();
-            all.iter().map(|s| s.to_string()).collect::<Vec<_>>().join(", ")
+            all.iter()
+                .map(|s| s.to_string())
+                .collect::<Vec<_>>()
+                .join(", ")
         };
         match kind {
             RowKind::Probability if !total.is_one() => {
@@ -321,7 +329,11 @@ pub fn validate(spec: &ChainSpec) -> Result<Chain, Vec<Issue>> {
     }
 }
 
-fn validate_start(start: &StartSpec, ids: &[String], issues: &mut Issues) -> Vec<(usize, BigRational)> {
+fn validate_start(
+    start: &StartSpec,
+    ids: &[String],
+    issues: &mut Issues,
+) -> Vec<(usize, BigRational)> {
     let find = |id: &str| ids.iter().position(|known| known == id);
     let unknown = |id: &str| {
         format!("unknown state '{id}': a start state must be declared or appear in a transition")
@@ -336,7 +348,10 @@ fn validate_start(start: &StartSpec, ids: &[String], issues: &mut Issues) -> Vec
         },
         StartSpec::Distribution(weights) => {
             if weights.is_empty() {
-                issues.add("/chain/start", "a start distribution needs at least one state");
+                issues.add(
+                    "/chain/start",
+                    "a start distribution needs at least one state",
+                );
                 return Vec::new();
             }
             let mut total = BigRational::zero();
@@ -359,10 +374,7 @@ fn validate_start(start: &StartSpec, ids: &[String], issues: &mut Issues) -> Vec
             if !total.is_one() && issues.0.is_empty() {
                 issues.add(
                     "/chain/start",
-                    format!(
-                        "start probabilities sum to {}, not 1",
-                        exact_text(&total)
-                    ),
+                    format!("start probabilities sum to {}, not 1", exact_text(&total)),
                 );
             }
             distribution.sort_by_key(|(i, _)| *i);

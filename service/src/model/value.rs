@@ -143,7 +143,9 @@ mod tests {
 
     #[test]
     fn refuses_what_is_not_a_number() {
-        for bad in ["", "abc", "1/0", "0x10", "1e", "1e+", "--1", ".", "1.2.3", "1//2", "%", "e5"] {
+        for bad in [
+            "", "abc", "1/0", "0x10", "1e", "1e+", "--1", ".", "1.2.3", "1//2", "%", "e5",
+        ] {
             assert!(parse_exact(bad).is_err(), "{bad:?} was accepted");
         }
     }
@@ -151,7 +153,9 @@ mod tests {
     #[test]
     fn refuses_huge_numbers_without_computing_them() {
         assert!(parse_exact("1e999999").unwrap_err().contains("exponent"));
-        assert!(parse_exact(&"9".repeat(100_000)).unwrap_err().contains("characters"));
+        assert!(parse_exact(&"9".repeat(100_000))
+            .unwrap_err()
+            .contains("characters"));
         assert!(parse_exact("1e-400").is_ok());
     }
 

@@ -123,7 +123,8 @@ impl<S: Scalar> Factors<S> {
     /// Number of stored entries in both factors (a measure of fill).
     #[must_use]
     pub fn entries(&self) -> usize {
-        self.lower.iter().map(Vec::len).sum::<usize>() + self.upper.iter().map(Vec::len).sum::<usize>()
+        self.lower.iter().map(Vec::len).sum::<usize>()
+            + self.upper.iter().map(Vec::len).sum::<usize>()
     }
 
     /// Solves `A x = b`.
@@ -257,7 +258,12 @@ mod tests {
         let transposed: Vec<SparseRow<BigRational>> = (0..3)
             .map(|j| {
                 (0..3)
-                    .filter_map(|i| rows[i].iter().find(|(c, _)| *c == j).map(|(_, v)| (i, v.clone())))
+                    .filter_map(|i| {
+                        rows[i]
+                            .iter()
+                            .find(|(c, _)| *c == j)
+                            .map(|(_, v)| (i, v.clone()))
+                    })
                     .collect()
             })
             .collect();

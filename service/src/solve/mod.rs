@@ -259,7 +259,11 @@ fn run<S: Scalar>(
         solver: SolverInfo {
             method: format!(
                 "{} sparse LU, Markowitz order ({} factor entries)",
-                if S::EXACT { "exact rational" } else { "float64" },
+                if S::EXACT {
+                    "exact rational"
+                } else {
+                    "float64"
+                },
                 factors.entries()
             ),
             transient_states: n,
@@ -340,7 +344,8 @@ impl<S: Scalar> Solution<'_, S> {
             })
         };
         let absorbed: Vec<S> = (0..absorbing_count).map(outcome_mass).collect();
-        let trapped: Vec<S> = (absorbing_count..absorbing_count + self.structure.trap_classes.len())
+        let trapped: Vec<S> = (absorbing_count
+            ..absorbing_count + self.structure.trap_classes.len())
             .map(outcome_mass)
             .collect();
         let never = trapped.iter().fold(S::zero(), |sum, p| sum.add(p));
@@ -360,7 +365,9 @@ impl<S: Scalar> Solution<'_, S> {
             let finite = never.is_zero();
             let mean = self.weighted(&start, &self.steps);
             let variance = {
-                let v = self.weighted(&start, &self.second_moment).sub(&mean.mul(&mean));
+                let v = self
+                    .weighted(&start, &self.second_moment)
+                    .sub(&mean.mul(&mean));
                 // Rounding can leave a tiny negative where the variance is 0.
                 let tolerance = 1e-9 * mean.to_f64().powi(2).max(1.0);
                 if !S::EXACT && v.to_f64() < 0.0 && v.to_f64() > -tolerance {
@@ -402,7 +409,10 @@ impl<S: Scalar> Solution<'_, S> {
                         StateKind::Trapped => {
                             let class = self.structure.trap_class_of[state].expect("trapped");
                             let reached = !trapped[class].is_zero();
-                            Some((ids[state].clone(), (!reached).then(|| S::zero().to_number())))
+                            Some((
+                                ids[state].clone(),
+                                (!reached).then(|| S::zero().to_number()),
+                            ))
                         }
                     })
                     .collect(),
@@ -422,12 +432,17 @@ impl<S: Scalar> Solution<'_, S> {
             .filter(|(c, _)| {
                 by_state
                     || self.chain.start.iter().any(|(state, _)| {
-                        !self.outcome_probability(*state, absorbing_count + c).is_zero()
+                        !self
+                            .outcome_probability(*state, absorbing_count + c)
+                            .is_zero()
                     })
             })
             .map(|(_, class)| {
-                let mut names: Vec<&str> =
-                    class.iter().take(8).map(|&s| self.chain.ids[s].as_str()).collect();
+                let mut names: Vec<&str> = class
+                    .iter()
+                    .take(8)
+                    .map(|&s| self.chain.ids[s].as_str())
+                    .collect();
                 if class.len() > 8 {
                     names.push("…");
                 }
