@@ -313,7 +313,7 @@ pub struct SolverInfo {
 }
 
 /// Body of a successful `POST /v1/solve`.
-#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[derive(Clone, Debug, PartialEq, Serialize)]
 #[cfg_attr(feature = "schema", derive(ToSchema))]
 pub struct SolveResponse {
     /// The arithmetic used.
@@ -386,5 +386,31 @@ impl<'de> Deserialize<'de> for StartSpec {
                 json_kind(&other)
             ))),
         }
+    }
+}
+
+impl<'de> Deserialize<'de> for SolveResponse {
+    fn deserialize<D: Deserializer<'de>>(deserializer: D) -> Result<Self, D::Error> {
+        // serde's `flatten` cannot read numbers under serde_json's `arbitrary_precision`, so the
+        // top-level fields and the flattened metrics are read from one JSON value separately.
+        #[derive(Deserialize)]
+        struct Top {
+            arithmetic: UsedArithmetic,
+            #[serde(default)]
+            by_state: Option<BTreeMap<String, Metrics>>,
+            #[serde(default)]
+            warnings: Vec<String>,
+            solver: SolverInfo,
+        }
+        let value = serde_json::Value::deserialize(deserializer)?;
+        let top: Top = serde_json::from_value(value.clone()).map_err(serde::de::Error::custom)?;
+        let metrics: Metrics = serde_json::from_value(value).map_err(serde::de::Error::custom)?;
+        Ok(SolveResponse {
+            arithmetic: top.arithmetic,
+            metrics,
+            by_state: top.by_state,
+            warnings: top.warnings,
+            solver: top.solver,
+        })
     }
 }

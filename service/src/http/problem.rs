@@ -89,6 +89,9 @@ impl ApiError {
             _ => Vec::new(),
         };
         let detail = match self {
+            ApiError::Invalid(issues) if issues.len() == 1 && issues[0].pointer.is_empty() => {
+                issues[0].detail.clone()
+            }
             ApiError::Invalid(issues) if issues.len() == 1 => {
                 format!("{}: {}", issues[0].pointer, issues[0].detail)
             }

@@ -95,6 +95,10 @@ fn parse_json<T: DeserializeOwned>(body: &[u8]) -> Result<T, ApiError> {
             })
             .collect();
         let inner = error.into_inner();
+        // A shape error may come before a syntax error later in the body: syntax is reported first.
+        if let Err(syntax) = serde_json::from_slice::<serde::de::IgnoredAny>(body) {
+            return ApiError::MalformedJson(syntax.to_string());
+        }
         match inner.classify() {
             serde_json::error::Category::Data => ApiError::Invalid(vec![Issue {
                 pointer,

@@ -1,0 +1,251 @@
+//! How the service behaves beyond single closed forms: traps, start distributions, defaults,
+//! float against exact, the choice of arithmetic, gzip bodies.
+
+use std::io::Write;
+
+use oddsmith_client::types::UsedArithmetic;
+use serde_json::json;
+
+use crate::helpers::{exact, spawn_app, spawn_app_with};
+
+/// An invented dungeon: from the hall the walk may fall into a pit it never leaves.
+fn dungeon() -> serde_json::Value {
+    json!({
+        "transitions": [
+            {"from": "hall", "to": "treasure", "probability": "1/2"},
+            {"from": "hall", "to": "pit", "probability": "1/4"},
+            {"from": "hall", "to": "hall", "probability": "1/4"},
+            {"from": "pit", "to": "ledge", "probability": 1},
+            {"from": "ledge", "to": "pit", "probability": 1},
+            {"from": "gate", "to": "treasure", "probability": 1}
+        ],
+        "start": "hall"
+    })
+}
+
+#[tokio::test]
+async fn a_closed_class_traps_the_walk_and_makes_expected_steps_infinite() {
+    let app = spawn_app().await;
+    let answer = app
+        .solve_ok(json!({"chain": dungeon(), "report": ["absorption", "steps", "visits"], "by_state": true}))
+        .await;
+    assert_eq!(answer.arithmetic, UsedArithmetic::Exact);
+    let metrics = &answer.metrics;
+    assert_eq!(
+        exact(&metrics.absorption.as_ref().unwrap()["treasure"]),
+        "2/3"
+    );
+    assert_eq!(exact(metrics.never_absorbed.as_ref().unwrap()), "1/3");
+    let steps = metrics.steps.as_ref().unwrap();
+    assert!(steps.mean.is_none() && steps.variance.is_none());
+    // Given the treasure, the wait is geometric with parameter 2/3 on the hall's exits: 4/3.
+    assert_eq!(exact(steps.mean_given["treasure"].as_ref().unwrap()), "4/3");
+    let visits = metrics.visits.as_ref().unwrap();
+    assert_eq!(exact(visits["hall"].as_ref().unwrap()), "4/3");
+    assert!(visits["pit"].is_none() && visits["ledge"].is_none());
+    assert_eq!(exact(visits["gate"].as_ref().unwrap()), "0");
+    assert!(
+        answer.warnings.iter().any(|w| w.contains("{pit, ledge}")),
+        "{:?}",
+        answer.warnings
+    );
+    let by_state = answer.by_state.unwrap();
+    assert_eq!(exact(by_state["pit"].never_absorbed.as_ref().unwrap()), "1");
+    assert_eq!(
+        exact(
+            by_state["gate"]
+                .steps
+                .as_ref()
+                .unwrap()
+                .mean
+                .as_ref()
+                .unwrap()
+        ),
+        "1"
+    );
+    assert!(by_state["gate"]
+        .steps
+        .as_ref()
+        .unwrap()
+        .mean_given
+        .contains_key("treasure"));
+}
+
+#[tokio::test]
+async fn a_start_distribution_mixes_the_answers_of_its_states() {
+    let app = spawn_app().await;
+    let mut chain = dungeon();
+    chain["start"] = json!({"gate": "1/2", "treasure": "1/4", "hall": "1/4"});
+    let answer = app.solve_ok(json!({"chain": chain})).await;
+    // treasure: 1/2 · 1 + 1/4 · 1 + 1/4 · 2/3 = 11/12; trapped only via the hall: 1/4 · 1/3.
+    assert_eq!(
+        exact(&answer.metrics.absorption.as_ref().unwrap()["treasure"]),
+        "11/12"
+    );
+    assert_eq!(
+        exact(answer.metrics.never_absorbed.as_ref().unwrap()),
+        "1/12"
+    );
+    chain["start"] = json!({"gate": "1/2", "treasure": "1/2"});
+    let answer = app.solve_ok(json!({"chain": chain})).await;
+    let steps = answer.metrics.steps.unwrap();
+    // Steps are 1 or 0 with equal chance: mean 1/2, variance 1/4; given treasure, 1/2.
+    assert_eq!(exact(steps.mean.as_ref().unwrap()), "1/2");
+    assert_eq!(exact(steps.variance.as_ref().unwrap()), "1/4");
+    assert_eq!(exact(steps.mean_given["treasure"].as_ref().unwrap()), "1/2");
+    assert!(
+        answer.warnings.is_empty(),
+        "the trap is unreachable: {:?}",
+        answer.warnings
+    );
+}
+
+#[tokio::test]
+async fn defaults_report_absorption_and_steps_only_and_list_every_absorbing_state() {
+    let app = spawn_app().await;
+    let answer = app
+        .solve_ok(json!({"chain": {
+            "states": ["refund", {"id": "chargeback", "absorbing": true}],
+            "transitions": [{"from": "pending", "to": "settled", "probability": 1}],
+            "start": "pending"
+        }}))
+        .await;
+    let absorption = answer.metrics.absorption.unwrap();
+    let keys: Vec<&str> = absorption.keys().map(String::as_str).collect();
+    assert_eq!(keys, ["chargeback", "refund", "settled"]);
+    assert_eq!(exact(&absorption["refund"]), "0");
+    assert!(answer.metrics.visits.is_none());
+    assert!(answer.by_state.is_none());
+    assert!(answer.metrics.steps.unwrap().mean_given["refund"].is_none());
+}
+
+#[tokio::test]
+async fn float_arithmetic_agrees_with_exact_and_reports_its_residual() {
+    let app = spawn_app().await;
+    let mut transitions = Vec::new();
+    // An invented payment gateway: each attempt succeeds with 0.9, fails softly with 0.07
+    // (retry) or hard with 0.03, up to four attempts.
+    for k in 1..=4 {
+        let next = if k < 4 {
+            format!("attempt{}", k + 1)
+        } else {
+            "exhausted".into()
+        };
+        transitions.push(json!({"from": format!("attempt{k}"), "to": "paid", "probability": 0.9}));
+        transitions.push(json!({"from": format!("attempt{k}"), "to": next, "probability": 0.07}));
+        transitions
+            .push(json!({"from": format!("attempt{k}"), "to": "declined", "probability": 0.03}));
+    }
+    let chain = json!({"transitions": transitions, "start": "attempt1"});
+    let request = |arithmetic: &str| json!({"chain": chain, "arithmetic": arithmetic, "report": ["absorption", "steps", "visits"], "by_state": true});
+    let exact_answer = app.solve_ok(request("exact")).await;
+    let float_answer = app.solve_ok(request("float")).await;
+    assert_eq!(float_answer.arithmetic, UsedArithmetic::Float);
+    assert!(float_answer.solver.max_residual < 1e-12);
+    // The chance all four attempts fail softly: 0.07^4.
+    assert_eq!(
+        exact(&exact_answer.metrics.absorption.as_ref().unwrap()["exhausted"]),
+        "2401/100000000"
+    );
+    let exact_json = serde_json::to_value(&exact_answer).unwrap();
+    let float_json = serde_json::to_value(&float_answer).unwrap();
+    compare(&exact_json, &float_json, "");
+}
+
+/// Every `value` in the float answer is within 1e-12 of the exact answer's.
+fn compare(exact: &serde_json::Value, float: &serde_json::Value, at: &str) {
+    use serde_json::Value;
+    match (exact, float) {
+        (Value::Object(e), Value::Object(f)) if e.contains_key("exact") => {
+            let (e, f) = (e["value"].as_f64().unwrap(), f["value"].as_f64().unwrap());
+            assert!(
+                (e - f).abs() <= 1e-12 * e.abs().max(1.0),
+                "{at}: {e} vs {f}"
+            );
+            assert!(
+                !float.as_object().unwrap().contains_key("exact"),
+                "{at} has an exact form"
+            );
+        }
+        (Value::Object(e), Value::Object(f)) => {
+            for (key, value) in e {
+                if key != "solver" && key != "arithmetic" {
+                    compare(value, &f[key], &format!("{at}/{key}"));
+                }
+            }
+        }
+        (Value::Array(_), _) | (Value::String(_), _) => {}
+        (e, f) => assert_eq!(e.is_null(), f.is_null(), "{at}"),
+    }
+}
+
+/// A dense chain of `n` transient states with small integer weights (and two exits each).
+pub fn dense_chain(n: usize) -> serde_json::Value {
+    let mut transitions = Vec::new();
+    for i in 0..n {
+        for j in 0..n {
+            transitions.push(json!({"from": format!("s{i}"), "to": format!("s{j}"), "weight": 1 + (i * 7 + j * 3) % 5}));
+        }
+        transitions.push(json!({"from": format!("s{i}"), "to": "won", "weight": 1}));
+        transitions.push(json!({"from": format!("s{i}"), "to": "lost", "weight": 1 + i % 2}));
+    }
+    json!({"transitions": transitions, "start": "s0"})
+}
+
+#[tokio::test]
+async fn auto_falls_back_to_float_with_a_warning_when_exact_would_not_finish_in_time() {
+    let app = spawn_app_with(|s| s.solve_budget_ms = 2_000).await;
+    let answer = app.solve_ok(json!({"chain": dense_chain(200)})).await;
+    assert_eq!(answer.arithmetic, UsedArithmetic::Float);
+    assert!(
+        answer.warnings.iter().any(|w| w.contains("floating point")),
+        "{:?}",
+        answer.warnings
+    );
+    let small = app.solve_ok(json!({"chain": dense_chain(5)})).await;
+    assert_eq!(small.arithmetic, UsedArithmetic::Exact);
+}
+
+#[tokio::test]
+async fn gzip_bodies_are_decompressed() {
+    let app = spawn_app().await;
+    let body = serde_json::to_vec(&json!({"chain": dungeon()})).unwrap();
+    let mut encoder = flate2::write::GzEncoder::new(Vec::new(), flate2::Compression::default());
+    encoder.write_all(&body).unwrap();
+    let response = app
+        .http
+        .post(format!("{}/v1/solve", app.address))
+        .header("content-type", "application/json")
+        .header("content-encoding", "gzip")
+        .body(encoder.finish().unwrap())
+        .send()
+        .await
+        .unwrap();
+    assert_eq!(response.status(), 200);
+    let answer: serde_json::Value = response.json().await.unwrap();
+    assert_eq!(answer["never_absorbed"]["exact"], "1/3");
+}
+
+#[tokio::test]
+async fn repeated_transitions_are_summed_with_a_warning() {
+    let app = spawn_app().await;
+    let answer = app
+        .solve_ok(json!({"chain": {
+            "transitions": [
+                {"from": "spin", "to": "jackpot", "probability": "1/10"},
+                {"from": "spin", "to": "jackpot", "probability": "1/10"},
+                {"from": "spin", "to": "spin", "probability": "4/5"}
+            ],
+            "start": "spin"
+        }}))
+        .await;
+    assert_eq!(
+        exact(answer.metrics.steps.unwrap().mean.as_ref().unwrap()),
+        "5"
+    );
+    assert!(
+        answer.warnings[0].contains("transitions 0, 1"),
+        "{:?}",
+        answer.warnings
+    );
+}

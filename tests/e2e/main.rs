@@ -1,0 +1,8 @@
+//! End-to-end tests: each starts the real server on a free port and calls it over real sockets
+//! through the client crate.
+
+mod behaviour;
+mod errors;
+mod helpers;
+mod openapi;
+mod published;

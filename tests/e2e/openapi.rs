@@ -1,0 +1,93 @@
+//! The published OpenAPI document describes exactly the wire contract, and its example works.
+
+use serde_json::Value;
+
+use crate::helpers::spawn_app;
+
+fn property_names(document: &Value, schema: &str) -> Vec<String> {
+    let mut names: Vec<String> = document["components"]["schemas"][schema]["properties"]
+        .as_object()
+        .unwrap_or_else(|| panic!("schema {schema} has properties"))
+        .keys()
+        .cloned()
+        .collect();
+    names.sort();
+    names
+}
+
+#[tokio::test]
+async fn the_document_is_openapi_3_1_with_the_contract_field_names() {
+    let app = spawn_app().await;
+    let (status, content_type, document) = app.call(reqwest::Method::GET, "/openapi.json").await;
+    assert_eq!(status, 200);
+    assert_eq!(content_type, "application/json");
+    assert!(document["openapi"].as_str().unwrap().starts_with("3.1"));
+    for (path, method) in [
+        ("/v1/solve", "post"),
+        ("/healthz", "get"),
+        ("/readyz", "get"),
+        ("/openapi.json", "get"),
+    ] {
+        assert!(
+            document["paths"][path][method].is_object(),
+            "{method} {path}"
+        );
+    }
+    // Field names fixed by the wire contract.
+    let expect = |schema: &str, names: &[&str]| {
+        let mut names: Vec<String> = names.iter().map(|s| s.to_string()).collect();
+        names.sort();
+        assert_eq!(property_names(&document, schema), names, "{schema}");
+    };
+    expect(
+        "SolveRequest",
+        &["chain", "arithmetic", "report", "by_state"],
+    );
+    expect("ChainSpec", &["states", "transitions", "start"]);
+    expect(
+        "TransitionSpec",
+        &["from", "to", "probability", "weight", "cost"],
+    );
+    expect("StateDetail", &["id", "absorbing", "cost"]);
+    expect("Number", &["value", "exact"]);
+    expect("Steps", &["mean", "variance", "mean_given"]);
+    expect(
+        "Metrics",
+        &["absorption", "never_absorbed", "steps", "visits"],
+    );
+    expect(
+        "SolverInfo",
+        &[
+            "method",
+            "transient_states",
+            "transitions",
+            "elapsed_ms",
+            "max_residual",
+        ],
+    );
+    expect("Problem", &["type", "title", "status", "detail", "errors"]);
+    expect("ProblemItem", &["pointer", "detail"]);
+    let responses = &document["paths"]["/v1/solve"]["post"]["responses"];
+    for status in ["200", "400", "413", "415", "422", "503"] {
+        assert!(
+            responses[status].is_object(),
+            "response {status} documented"
+        );
+    }
+    assert!(responses["422"]["content"]["application/problem+json"].is_object());
+}
+
+#[tokio::test]
+async fn the_documented_example_request_solves() {
+    let app = spawn_app().await;
+    let (_, _, document) = app.call(reqwest::Method::GET, "/openapi.json").await;
+    let example = &document["paths"]["/v1/solve"]["post"]["requestBody"]["content"]
+        ["application/json"]["example"];
+    assert!(example.is_object(), "an example is published");
+    let answer = app.solve_ok(example.clone()).await;
+    // 1/40 sword versus 1/200 mimic per chest: the sword comes first with 5/6.
+    assert_eq!(
+        answer.metrics.absorption.unwrap()["sword"].exact.as_deref(),
+        Some("5/6")
+    );
+}
