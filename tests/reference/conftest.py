@@ -3,6 +3,10 @@
 ``ODDSMITH_BIN`` overrides the binary path (default ``<repo>/target/debug/oddsmith``);
 ``ODDSMITH_URL`` points the suite at a server that is already running instead.
 Only the standard library talks HTTP, over one kept-alive connection.
+
+Run from the repository root:
+    python3 -m pip install -r tests/reference/requirements.txt
+    cargo build -p oddsmith && python3 -m pytest tests/reference -q
 """
 
 from __future__ import annotations

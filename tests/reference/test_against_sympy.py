@@ -53,12 +53,15 @@ def test_random_chain(service, seed, mode):
     cmp.check(f"seed {seed}; request: {text}")
 
 
-@pytest.mark.parametrize("seed", [s for s in SEEDS if s % 10 == 0])
+def _trapping_seeds(limit: int = 25) -> list[int]:
+    """Seeds whose start can end trapped (the reference is cached for reuse)."""
+    return [s for s in SEEDS if case(s)[2]["never_absorbed"] > 0][:limit]
+
+
+@pytest.mark.parametrize("seed", _trapping_seeds())
 def test_trapping_is_explained_in_warnings(service, seed):
     """Where the walk can be trapped, a warning names at least one trapping state."""
     chain, parsed, ref = case(seed)
-    if ref["never_absorbed"] == 0:
-        pytest.skip("no trapped mass from this start")
     got = service.solve(request_text(chain, "exact"))
     trapping = set(structure(parsed).recurrent)
     warnings = got.get("warnings", [])

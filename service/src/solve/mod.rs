@@ -28,10 +28,9 @@ use budget::Budget;
 use elimination::{multiply, Factors, SparseRow};
 use scalar::Scalar;
 
-/// Chains with more transient states than this go straight to floating point under `auto`.
-/// Measured on the 2-core reference machine (see DEVELOPERS.md): exact elimination of a dense
-/// 150-state chain, or of a 3,000-state banded one, takes about a second in a release build.
-pub const AUTO_EXACT_MAX_TRANSIENT: usize = 3_000;
+/// Cost model of exact solving used by `auto`: seconds per (factor entry x transient state),
+/// fitted on the 2-core reference machine in a release build (see DEVELOPERS.md, "Exact or float").
+pub const EXACT_SECONDS_PER_ENTRY_STATE: f64 = 3e-6;
 
 /// Share of the budget that `auto` grants exact arithmetic before falling back to float.
 pub const AUTO_EXACT_BUDGET_SHARE: f64 = 0.25;
@@ -86,11 +85,12 @@ pub fn solve(chain: &Chain, plan: &Plan, budget: &Budget) -> Result<SolveRespons
     match plan.arithmetic {
         Arithmetic::Exact => run::<BigRational>(chain, &structure, plan, budget),
         Arithmetic::Float => run::<f64>(chain, &structure, plan, budget),
-        Arithmetic::Auto if n > AUTO_EXACT_MAX_TRANSIENT => {
-            run::<f64>(chain, &structure, plan, budget)
-        }
         Arithmetic::Auto => {
             let trial = budget.share(AUTO_EXACT_BUDGET_SHARE);
+            let predicted = predicted_exact_seconds(chain, &structure, budget)?;
+            if predicted > trial.limit().as_secs_f64() {
+                return run::<f64>(chain, &structure, plan, budget);
+            }
             match run::<BigRational>(chain, &structure, plan, &trial) {
                 Err(SolveError::BudgetExceeded { limit }) => {
                     let mut answer = run::<f64>(chain, &structure, plan, budget)?;
@@ -105,6 +105,20 @@ pub fn solve(chain: &Chain, plan: &Plan, budget: &Budget) -> Result<SolveRespons
             }
         }
     }
+}
+
+/// Predicts the seconds an exact solve takes, from a float factorisation's fill (cheap next to
+/// the exact one): exact numbers grow by a few bits per transient state, so the cost is roughly
+/// `factor entries x transient states x` [`EXACT_SECONDS_PER_ENTRY_STATE`].
+fn predicted_exact_seconds(
+    chain: &Chain,
+    structure: &Structure,
+    budget: &Budget,
+) -> Result<f64, SolveError> {
+    let system = linear_system::<f64>(chain, structure, budget)?;
+    let factors = Factors::new(system.matrix, budget)?;
+    let n = structure.transient.len();
+    Ok(factors.entries() as f64 * n as f64 * EXACT_SECONDS_PER_ENTRY_STATE)
 }
 
 /// The solved systems, in one arithmetic.
@@ -131,42 +145,13 @@ fn run<S: Scalar>(
 ) -> Result<SolveResponse, SolveError> {
     let n = structure.transient.len();
     let absorbing_count = structure.absorbing.len();
+    let LinearSystem {
+        matrix: rows,
+        outcomes: rhs,
+    } = linear_system::<S>(chain, structure, budget)?;
     let mut outcome_of = vec![None; chain.len()];
     for (k, &a) in structure.absorbing.iter().enumerate() {
         outcome_of[a] = Some(k);
-    }
-    let outcome_count = absorbing_count + structure.trap_classes.len();
-
-    // A = I - Q over the transient states, and R split by outcome.
-    let mut rows: Vec<SparseRow<S>> = Vec::with_capacity(n);
-    let mut rhs = vec![vec![S::zero(); n]; outcome_count];
-    for (p, &state) in structure.transient.iter().enumerate() {
-        budget.check()?;
-        let mut row: SparseRow<S> = vec![(p, S::one())];
-        for (target, probability) in chain.row(state) {
-            let probability = S::from_rational(probability);
-            match structure.kind[target] {
-                StateKind::Transient => {
-                    let q = structure.position[target].expect("transient states have a position");
-                    if q == p {
-                        row[0].1 = row[0].1.sub(&probability);
-                    } else {
-                        row.push((q, S::zero().sub(&probability)));
-                    }
-                }
-                StateKind::Absorbing => {
-                    let k = outcome_of[target].expect("absorbing states are outcomes");
-                    rhs[k][p] = rhs[k][p].add(&probability);
-                }
-                StateKind::Trapped => {
-                    let k = absorbing_count
-                        + structure.trap_class_of[target].expect("trapped states have a class");
-                    rhs[k][p] = rhs[k][p].add(&probability);
-                }
-            }
-        }
-        row.sort_by_key(|&(j, _)| j);
-        rows.push(row);
     }
 
     let factors = Factors::new(rows.clone(), budget)?;
@@ -271,6 +256,72 @@ fn run<S: Scalar>(
             elapsed_ms: budget.elapsed().as_secs_f64() * 1e3,
             max_residual,
         },
+    })
+}
+
+/// The linear systems of a chain: `A = I - Q` and the right-hand sides `R`.
+struct LinearSystem<S> {
+    /// `I - Q` over the transient states, rows sorted by column.
+    matrix: Vec<SparseRow<S>>,
+    /// One-step probabilities into each outcome: each absorbing state in order, then each trap
+    /// class.
+    outcomes: Vec<Vec<S>>,
+}
+
+fn linear_system<S: Scalar>(
+    chain: &Chain,
+    structure: &Structure,
+    budget: &Budget,
+) -> Result<LinearSystem<S>, SolveError> {
+    let n = structure.transient.len();
+    let absorbing_count = structure.absorbing.len();
+    let mut outcome_of = vec![None; chain.len()];
+    for (k, &a) in structure.absorbing.iter().enumerate() {
+        outcome_of[a] = Some(k);
+    }
+    let outcome_count = absorbing_count + structure.trap_classes.len();
+
+    let mut rows: Vec<SparseRow<S>> = Vec::with_capacity(n);
+    let mut rhs = vec![vec![S::zero(); n]; outcome_count];
+    for (p, &state) in structure.transient.iter().enumerate() {
+        budget.check()?;
+        // The diagonal 1 - q_ii is formed exactly before rounding: a self-loop of 0.999999999999
+        // rounded first would lose most of the digits of its escape probability.
+        let self_loop = chain
+            .row(state)
+            .find(|&(target, _)| target == state)
+            .map_or_else(num_traits::Zero::zero, |(_, p)| p.clone());
+        let mut row: SparseRow<S> = vec![(
+            p,
+            S::from_rational(&(<BigRational as num_traits::One>::one() - self_loop)),
+        )];
+        for (target, probability) in chain.row(state) {
+            let probability = S::from_rational(probability);
+            match structure.kind[target] {
+                StateKind::Transient => {
+                    let q = structure.position[target].expect("transient states have a position");
+                    if q != p {
+                        row.push((q, S::zero().sub(&probability)));
+                    }
+                }
+                StateKind::Absorbing => {
+                    let k = outcome_of[target].expect("absorbing states are outcomes");
+                    rhs[k][p] = rhs[k][p].add(&probability);
+                }
+                StateKind::Trapped => {
+                    let k = absorbing_count
+                        + structure.trap_class_of[target].expect("trapped states have a class");
+                    rhs[k][p] = rhs[k][p].add(&probability);
+                }
+            }
+        }
+        row.sort_by_key(|&(j, _)| j);
+        rows.push(row);
+    }
+
+    Ok(LinearSystem {
+        matrix: rows,
+        outcomes: rhs,
     })
 }
 
