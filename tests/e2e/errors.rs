@@ -289,3 +289,52 @@ async fn when_every_slot_is_busy_the_answer_is_503_with_retry_after() {
     assert_eq!(slow.await.unwrap(), 422);
     assert_eq!(app.call(Method::GET, "/readyz").await.0, 200);
 }
+
+#[tokio::test]
+async fn probabilities_too_small_for_doubles_get_422_in_float_and_an_answer_in_exact() {
+    let app = spawn_app().await;
+    let chain = json!({"transitions": [
+        {"from": "grind", "to": "relic", "weight": 1},
+        {"from": "grind", "to": "grind", "weight": "1e400"}
+    ], "start": "grind"});
+    let answer = post_json(&app, &json!({"chain": chain, "arithmetic": "float"})).await;
+    assert_problem(&answer, 422);
+    assert!(
+        answer.2["detail"].as_str().unwrap().contains("exact"),
+        "{}",
+        answer.2
+    );
+    let answer = post_json(&app, &json!({"chain": chain, "arithmetic": "exact"})).await;
+    assert_eq!(answer.0, 200);
+    assert_eq!(
+        answer.2["steps"]["mean"]["exact"],
+        format!("1{}1", "0".repeat(399))
+    );
+}
+
+#[tokio::test]
+async fn an_answer_too_large_to_send_is_refused_up_front() {
+    // 1,500 transient states each with its own absorbing exit: by_state would report
+    // 1,500 x 1,500 absorption probabilities.
+    let app = spawn_app().await;
+    let transitions: Vec<Value> = (0..1_500)
+        .flat_map(|i| {
+            [
+                json!({"from": format!("s{i}"), "to": format!("exit{i}"), "probability": "1/2"}),
+                json!({"from": format!("s{i}"), "to": format!("s{}", (i + 1) % 1_500), "probability": "1/2"}),
+            ]
+        })
+        .collect();
+    let started = Instant::now();
+    let answer = post_json(
+        &app,
+        &json!({"chain": {"transitions": transitions, "start": "s0"}, "by_state": true}),
+    )
+    .await;
+    assert_problem(&answer, 422);
+    assert!(answer.2["type"]
+        .as_str()
+        .unwrap()
+        .ends_with("answer-too-large"));
+    assert!(started.elapsed() < Duration::from_secs(5));
+}

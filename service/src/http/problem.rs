@@ -35,6 +35,9 @@ pub enum ApiError {
     /// 422: the answer would be larger than the service computes or sends.
     #[error("{0}")]
     TooLarge(String),
+    /// 422: floating point cannot represent this chain's answer faithfully.
+    #[error("{0}")]
+    Numerical(String),
     /// 503: every computation slot is taken; retry shortly.
     #[error("every computation slot is busy; retry in a moment")]
     Saturated,
@@ -67,6 +70,7 @@ impl ApiError {
             ApiError::Invalid(_) => ("invalid-model", "Invalid model"),
             ApiError::BudgetExceeded(_) => ("budget-exceeded", "Budget exceeded"),
             ApiError::TooLarge(_) => ("answer-too-large", "Answer too large"),
+            ApiError::Numerical(_) => ("numerical-breakdown", "Floating point broke down"),
             ApiError::Saturated => ("saturated", "Service saturated"),
             ApiError::NotFound(_) => ("not-found", "Not found"),
             ApiError::MethodNotAllowed { .. } => ("method-not-allowed", "Method not allowed"),
@@ -121,7 +125,9 @@ impl From<SolveError> for ApiError {
                 limit.as_millis()
             )),
             SolveError::TooLarge(why) => ApiError::TooLarge(why),
-            SolveError::Singular => ApiError::Internal("singular system from a valid chain".into()),
+            SolveError::Numerical(why) => {
+                ApiError::Numerical(format!("{why}; ask for \"exact\" arithmetic"))
+            }
         }
     }
 }
@@ -132,9 +138,10 @@ impl ResponseError for ApiError {
             ApiError::MalformedJson(_) => StatusCode::BAD_REQUEST,
             ApiError::PayloadTooLarge { .. } => StatusCode::PAYLOAD_TOO_LARGE,
             ApiError::UnsupportedMediaType(_) => StatusCode::UNSUPPORTED_MEDIA_TYPE,
-            ApiError::Invalid(_) | ApiError::BudgetExceeded(_) | ApiError::TooLarge(_) => {
-                StatusCode::UNPROCESSABLE_ENTITY
-            }
+            ApiError::Invalid(_)
+            | ApiError::BudgetExceeded(_)
+            | ApiError::TooLarge(_)
+            | ApiError::Numerical(_) => StatusCode::UNPROCESSABLE_ENTITY,
             ApiError::Saturated => StatusCode::SERVICE_UNAVAILABLE,
             ApiError::NotFound(_) => StatusCode::NOT_FOUND,
             ApiError::MethodNotAllowed { .. } => StatusCode::METHOD_NOT_ALLOWED,

@@ -33,7 +33,7 @@ impl<S: Scalar> Factors<S> {
     /// Factors the `n x n` matrix given by its rows (each sorted by column, diagonal present).
     ///
     /// # Errors
-    /// [`SolveError::BudgetExceeded`] past the deadline; [`SolveError::Singular`] if a pivot is
+    /// [`SolveError::BudgetExceeded`] past the deadline; [`SolveError::Numerical`] if a pivot is
     /// zero, which a valid chain cannot produce in exact arithmetic.
     pub fn new(mut rows: Vec<SparseRow<S>>, budget: &Budget) -> Result<Self, SolveError> {
         let n = rows.len();
@@ -69,10 +69,14 @@ impl<S: Scalar> Factors<S> {
             }
             budget.check()?;
             let pivot_row = std::mem::take(&mut rows[p]);
-            let diagonal = match pivot_row.binary_search_by_key(&p, |&(j, _)| j) {
-                Ok(at) if !pivot_row[at].1.is_zero() => pivot_row[at].1.clone(),
-                _ => return Err(SolveError::Singular),
-            };
+            let diagonal =
+                match pivot_row.binary_search_by_key(&p, |&(j, _)| j) {
+                    Ok(at) if !pivot_row[at].1.is_zero() => pivot_row[at].1.clone(),
+                    _ => return Err(SolveError::Numerical(
+                        "a pivot of the elimination is zero (probabilities too small for doubles)"
+                            .into(),
+                    )),
+                };
             for &(j, _) in &pivot_row {
                 column_count[j] -= 1;
             }

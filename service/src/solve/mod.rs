@@ -35,8 +35,13 @@ pub const EXACT_SECONDS_PER_ENTRY_STATE: f64 = 3e-6;
 /// Share of the budget that `auto` grants exact arithmetic before falling back to float.
 pub const AUTO_EXACT_BUDGET_SHARE: f64 = 0.25;
 
-/// Largest number of entries a `by_state` visits table may have (it grows as n²).
-pub const MAX_VISIT_TABLE_ENTRIES: usize = 1_000_000;
+/// Most numbers one answer may hold (a `by_state` table grows as states x outcomes, or n² with
+/// visits); checked before any work is done.
+pub const MAX_REPORTED_NUMBERS: usize = 2_000_000;
+
+/// Most numbers the solution vectors may hold (transient states x outcomes, twice with steps),
+/// which bounds a request's memory before any work is done.
+pub const MAX_SOLUTION_NUMBERS: usize = 50_000_000;
 
 /// Why a computation did not produce an answer.
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
@@ -47,9 +52,10 @@ pub enum SolveError {
         /// The budget that was exceeded.
         limit: Duration,
     },
-    /// A pivot was zero; a validated chain cannot cause this in exact arithmetic.
-    #[error("the linear system is numerically singular")]
-    Singular,
+    /// Floating point broke down (a pivot underflowed to zero, or a result overflowed); a
+    /// validated chain cannot cause this in exact arithmetic.
+    #[error("floating-point arithmetic broke down on this chain: {0}")]
+    Numerical(String),
     /// The answer would be too large to compute or send.
     #[error("{0}")]
     TooLarge(String),
@@ -73,15 +79,7 @@ pub struct Plan {
 pub fn solve(chain: &Chain, plan: &Plan, budget: &Budget) -> Result<SolveResponse, SolveError> {
     let structure = Structure::of(chain);
     let n = structure.transient.len();
-    if plan.by_state
-        && plan.report.contains(&Report::Visits)
-        && n.saturating_mul(n) > MAX_VISIT_TABLE_ENTRIES
-    {
-        return Err(SolveError::TooLarge(format!(
-            "`by_state` with `visits` asks for a table of {n} x {n} expected visits, over the \
-             limit of {MAX_VISIT_TABLE_ENTRIES} entries; drop one of them"
-        )));
-    }
+    check_size(chain, &structure, plan)?;
     match plan.arithmetic {
         Arithmetic::Exact => run::<BigRational>(chain, &structure, plan, budget),
         Arithmetic::Float => run::<f64>(chain, &structure, plan, budget),
@@ -105,6 +103,47 @@ pub fn solve(chain: &Chain, plan: &Plan, budget: &Budget) -> Result<SolveRespons
             }
         }
     }
+}
+
+/// Refuses, before any work, an answer whose size alone would exhaust memory or the network.
+fn check_size(chain: &Chain, structure: &Structure, plan: &Plan) -> Result<(), SolveError> {
+    let n = structure.transient.len();
+    let outcomes = structure.absorbing.len() + structure.trap_classes.len();
+    let copies = if plan.report.contains(&Report::Steps) {
+        2
+    } else {
+        1
+    };
+    let solution = n.saturating_mul(outcomes).saturating_mul(copies);
+    if solution > MAX_SOLUTION_NUMBERS {
+        return Err(SolveError::TooLarge(format!(
+            "{n} transient states and {outcomes} outcomes need {solution} intermediate numbers, \
+             over the limit of {MAX_SOLUTION_NUMBERS}; merge absorbing states that mean the same \
+             outcome"
+        )));
+    }
+    let per_start = plan
+        .report
+        .iter()
+        .map(|report| match report {
+            Report::Absorption => structure.absorbing.len() + 1,
+            Report::Steps => structure.absorbing.len() + 2,
+            Report::Visits => chain.len() - structure.absorbing.len(),
+        })
+        .sum::<usize>();
+    let starts = if plan.by_state {
+        1 + chain.len() - structure.absorbing.len()
+    } else {
+        1
+    };
+    let reported = per_start.saturating_mul(starts);
+    if reported > MAX_REPORTED_NUMBERS {
+        return Err(SolveError::TooLarge(format!(
+            "the answer would hold {reported} numbers ({per_start} from each of {starts} starts), \
+             over the limit of {MAX_REPORTED_NUMBERS}; ask without `by_state` or report less"
+        )));
+    }
+    Ok(())
 }
 
 /// Predicts the seconds an exact solve takes, from a float factorisation's fill (cheap next to
@@ -159,6 +198,11 @@ fn run<S: Scalar>(
     let mut solve = |b: Vec<S>| -> Result<Vec<S>, SolveError> {
         let x = factors.solve(b.clone(), budget)?;
         if !S::EXACT {
+            if !x.iter().all(|v| v.to_f64().is_finite()) {
+                return Err(SolveError::Numerical(
+                    "a result overflowed the range of doubles".into(),
+                ));
+            }
             max_residual = max_residual.max(residual(&rows, &x, &b));
         }
         Ok(x)
