@@ -78,7 +78,6 @@ pub struct Plan {
 /// [`SolveError`] when the budget runs out or the answer would be too large.
 pub fn solve(chain: &Chain, plan: &Plan, budget: &Budget) -> Result<SolveResponse, SolveError> {
     let structure = Structure::of(chain);
-    let n = structure.transient.len();
     check_size(chain, &structure, plan)?;
     match plan.arithmetic {
         Arithmetic::Exact => run::<BigRational>(chain, &structure, plan, budget),
