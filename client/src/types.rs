@@ -128,6 +128,9 @@ pub enum Report {
     Steps,
     /// Expected visits to each transient state (the start counts as a visit).
     Visits,
+    /// Derivatives and elasticities of every other reported metric with respect to each
+    /// parameter.
+    Sensitivity,
 }
 
 /// A state, declared by id alone or with details.
@@ -200,6 +203,10 @@ pub struct ChainSpec {
     pub transitions: Vec<TransitionSpec>,
     /// Where the walk starts.
     pub start: StartSpec,
+    /// Named parameters with their default values; any probability, weight, cost or start value
+    /// may then be an expression over them, e.g. `"1 - drop"`.
+    #[serde(default, skip_serializing_if = "BTreeMap::is_empty")]
+    pub parameters: BTreeMap<String, Value>,
 }
 
 fn default_report() -> Vec<Report> {
@@ -222,6 +229,13 @@ pub struct SolveRequest {
     /// Also report every metric from each transient state (default false).
     #[serde(default)]
     pub by_state: bool,
+    /// Parameter values overriding the chain's defaults.
+    #[serde(default, skip_serializing_if = "BTreeMap::is_empty")]
+    pub parameters: BTreeMap<String, Value>,
+    /// Solve once per parameter value (or grid point) instead; the answer is then a
+    /// [`SweepResponse`].
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub sweep: Option<Sweep>,
 }
 
 impl SolveRequest {
@@ -233,6 +247,8 @@ impl SolveRequest {
             arithmetic: Arithmetic::Auto,
             report: default_report(),
             by_state: false,
+            parameters: BTreeMap::new(),
+            sweep: None,
         }
     }
 }
@@ -294,6 +310,245 @@ pub struct Metrics {
     #[serde(default, skip_serializing_if = "Option::is_none")]
     #[cfg_attr(feature = "schema", schema(schema_with = nullable_number_map))]
     pub visits: Option<BTreeMap<String, Option<Number>>>,
+    /// For each parameter, the derivatives of the other reported metrics.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub sensitivity: Option<BTreeMap<String, Sensitivity>>,
+}
+
+/// The derivative of one metric with respect to one parameter.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+pub struct Derivative {
+    /// `d metric / d parameter`; `null` where the metric is infinite.
+    pub derivative: Option<Number>,
+    /// Relative change per relative change, `derivative x parameter / metric`; `null` where the
+    /// metric is 0 or infinite.
+    pub elasticity: Option<Number>,
+}
+
+/// Derivatives of the reported metrics with respect to one parameter; each present when its
+/// metric is reported.
+#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+pub struct Sensitivity {
+    /// Of each absorption probability.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub absorption: Option<BTreeMap<String, Derivative>>,
+    /// Of the probability of never being absorbed.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub never_absorbed: Option<Derivative>,
+    /// Of the expected steps.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub steps_mean: Option<Derivative>,
+    /// Of the variance of the steps.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub steps_variance: Option<Derivative>,
+    /// Of the expected steps given each outcome.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub steps_mean_given: Option<BTreeMap<String, Derivative>>,
+    /// Of the expected visits to each transient state.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub visits: Option<BTreeMap<String, Derivative>>,
+}
+
+/// One axis of a sweep: a parameter and its values, listed or evenly spaced.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+#[serde(deny_unknown_fields)]
+pub struct SweepAxis {
+    /// The parameter to vary.
+    pub parameter: String,
+    /// The values, in order (or give `from`, `to` and `count`).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub values: Option<Vec<Value>>,
+    /// First value of an evenly spaced range.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub from: Option<Value>,
+    /// Last value of an evenly spaced range.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub to: Option<Value>,
+    /// Number of evenly spaced values, ends included (at least 2).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub count: Option<u32>,
+}
+
+/// A sweep over one parameter, or a grid over two (a list of two axes; the last varies fastest).
+#[derive(Clone, Debug, PartialEq, Serialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+#[serde(untagged)]
+pub enum Sweep {
+    /// One parameter.
+    Axis(SweepAxis),
+    /// A grid over several parameters.
+    Grid(Vec<SweepAxis>),
+}
+
+impl Sweep {
+    /// The axes, in order.
+    #[must_use]
+    pub fn axes(&self) -> Vec<&SweepAxis> {
+        match self {
+            Sweep::Axis(axis) => vec![axis],
+            Sweep::Grid(axes) => axes.iter().collect(),
+        }
+    }
+}
+
+impl<'de> Deserialize<'de> for Sweep {
+    fn deserialize<D: Deserializer<'de>>(deserializer: D) -> Result<Self, D::Error> {
+        match serde_json::Value::deserialize(deserializer)? {
+            object @ serde_json::Value::Object(_) => serde_json::from_value(object)
+                .map(Sweep::Axis)
+                .map_err(serde::de::Error::custom),
+            array @ serde_json::Value::Array(_) => serde_json::from_value(array)
+                .map(Sweep::Grid)
+                .map_err(serde::de::Error::custom),
+            other => Err(serde::de::Error::custom(format!(
+                "expected an axis {{\"parameter\", \"values\" | \"from\", \"to\", \"count\"}} \
+                 or a list of axes, found {}",
+                json_kind(&other)
+            ))),
+        }
+    }
+}
+
+/// One point of a sweep: the parameter values, then the answer there.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+pub struct SweepPoint {
+    /// The swept parameters' values at this point.
+    pub parameters: BTreeMap<String, Number>,
+    /// The answer at this point.
+    #[serde(flatten)]
+    pub answer: SolveResponse,
+}
+
+impl<'de> Deserialize<'de> for SweepPoint {
+    fn deserialize<D: Deserializer<'de>>(deserializer: D) -> Result<Self, D::Error> {
+        let mut value = serde_json::Value::deserialize(deserializer)?;
+        let parameters = value
+            .as_object_mut()
+            .and_then(|object| object.remove("parameters"))
+            .ok_or_else(|| serde::de::Error::missing_field("parameters"))?;
+        Ok(SweepPoint {
+            parameters: serde_json::from_value(parameters).map_err(serde::de::Error::custom)?,
+            answer: serde_json::from_value(value).map_err(serde::de::Error::custom)?,
+        })
+    }
+}
+
+/// Body of a successful `POST /v1/solve` with `sweep`.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+pub struct SweepResponse {
+    /// One answer per point, in order.
+    pub sweep: Vec<SweepPoint>,
+}
+
+/// Which metric to read from an answer (shared by sweeps, tuning and checks).
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+#[serde(rename_all = "snake_case")]
+pub enum Metric {
+    /// Probability of ending in `outcome`.
+    Absorption,
+    /// Probability of never being absorbed.
+    NeverAbsorbed,
+    /// Expected steps (given `given`, when set).
+    StepsMean,
+    /// Variance of the steps.
+    StepsVariance,
+    /// Expected visits to `state`.
+    Visits,
+}
+
+/// A metric of a chain, e.g. `{"metric": "absorption", "outcome": "sword"}`.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+#[serde(deny_unknown_fields)]
+pub struct MetricSelector {
+    /// The metric.
+    pub metric: Metric,
+    /// The absorbing state, for `absorption`.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub outcome: Option<String>,
+    /// Condition `steps_mean` on ending in this absorbing state.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub given: Option<String>,
+    /// The transient state, for `visits`.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub state: Option<String>,
+    /// Start here instead of the chain's `start`.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub from: Option<String>,
+}
+
+/// A metric and the value it should reach.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+pub struct TuneTarget {
+    /// The metric.
+    #[serde(flatten)]
+    pub selector: MetricSelector,
+    /// The value to reach.
+    pub equals: Value,
+}
+
+impl<'de> Deserialize<'de> for TuneTarget {
+    fn deserialize<D: Deserializer<'de>>(deserializer: D) -> Result<Self, D::Error> {
+        // Read as one JSON value so that the selector can still reject unknown fields (serde's
+        // `flatten` cannot) and `equals` keeps its decimal text.
+        let mut value = serde_json::Value::deserialize(deserializer)?;
+        let equals = value
+            .as_object_mut()
+            .and_then(|object| object.remove("equals"))
+            .ok_or_else(|| serde::de::Error::missing_field("equals"))?;
+        Ok(TuneTarget {
+            selector: serde_json::from_value(value).map_err(serde::de::Error::custom)?,
+            equals: serde_json::from_value(equals).map_err(serde::de::Error::custom)?,
+        })
+    }
+}
+
+/// Body of `POST /v1/tune`: find the parameter value in `range` at which the target metric
+/// reaches its value.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+#[serde(deny_unknown_fields)]
+pub struct TuneRequest {
+    /// The chain, with the parameter among its `parameters`.
+    pub chain: ChainSpec,
+    /// The parameter to tune.
+    pub parameter: String,
+    /// The interval to search, `[low, high]`.
+    pub range: [Value; 2],
+    /// The metric and the value it should reach.
+    pub target: TuneTarget,
+    /// Arithmetic of each evaluation (default `auto`).
+    #[serde(default)]
+    pub arithmetic: Arithmetic,
+    /// Values of the other parameters, overriding the chain's defaults.
+    #[serde(default, skip_serializing_if = "BTreeMap::is_empty")]
+    pub parameters: BTreeMap<String, Value>,
+}
+
+/// Body of a successful `POST /v1/tune`.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+pub struct TuneResponse {
+    /// The tuned parameter.
+    pub parameter: String,
+    /// The value found; `exact` only when an exact rational root was verified.
+    pub value: Number,
+    /// The final bracket around the root.
+    pub bracket: [Number; 2],
+    /// The metric at `value`.
+    pub achieved: Number,
+    /// Number of chain evaluations it took.
+    pub evaluations: usize,
+    /// Things worth knowing, e.g. that the metric is not monotone in the range.
+    #[serde(default)]
+    pub warnings: Vec<String>,
 }
 
 /// How the answer was computed.

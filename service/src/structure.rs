@@ -174,6 +174,7 @@ mod tests {
                 "start": "a"
             }))
             .unwrap(),
+            &Default::default(),
         )
         .unwrap();
         let s = Structure::of(&chain);
@@ -197,6 +198,7 @@ mod tests {
             .collect();
         let chain = validate(
             &serde_json::from_value(json!({"transitions": transitions, "start": "s0"})).unwrap(),
+            &Default::default(),
         )
         .unwrap();
         let s = Structure::of(&chain);

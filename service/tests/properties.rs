@@ -64,7 +64,7 @@ fn spec(n: usize, rows: &[Vec<(usize, u32)>], start: &[u32]) -> Option<ChainSpec
 }
 
 fn run(spec: &ChainSpec, arithmetic: Arithmetic) -> SolveResponse {
-    let chain = validate(spec).expect("generated chains are valid");
+    let chain = validate(spec, &Default::default()).expect("generated chains are valid");
     let plan = Plan {
         arithmetic,
         report: BTreeSet::from([Report::Absorption, Report::Steps, Report::Visits]),
@@ -103,7 +103,7 @@ proptest! {
     #[test]
     fn fundamental_matrix_inverts_i_minus_q_and_its_rows_sum_to_the_expected_steps((n, rows, start) in chains()) {
         let Some(spec) = spec(n, &rows, &start) else { return Ok(()) };
-        let chain = validate(&spec).unwrap();
+        let chain = validate(&spec, &Default::default()).unwrap();
         let answer = run(&spec, Arithmetic::Exact);
         let by_state = answer.by_state.as_ref().unwrap();
         // N[i][j] for states whose visits are finite.

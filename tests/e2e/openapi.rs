@@ -41,9 +41,10 @@ async fn the_document_is_openapi_3_1_with_the_contract_field_names() {
     };
     expect(
         "SolveRequest",
-        &["chain", "arithmetic", "report", "by_state"],
+        &["chain", "arithmetic", "report", "by_state", "parameters", "sweep"],
     );
-    expect("ChainSpec", &["states", "transitions", "start"]);
+    expect("ChainSpec", &["states", "transitions", "start", "parameters"]);
+    expect("Derivative", &["derivative", "elasticity"]);
     expect(
         "TransitionSpec",
         &["from", "to", "probability", "weight", "cost"],
@@ -53,7 +54,7 @@ async fn the_document_is_openapi_3_1_with_the_contract_field_names() {
     expect("Steps", &["mean", "variance", "mean_given"]);
     expect(
         "Metrics",
-        &["absorption", "never_absorbed", "steps", "visits"],
+        &["absorption", "never_absorbed", "steps", "visits", "sensitivity"],
     );
     expect(
         "SolverInfo",

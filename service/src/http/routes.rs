@@ -130,7 +130,7 @@ fn solve_blocking(body: &[u8], budget: Duration) -> Result<SolveResponse, ApiErr
             detail: "list at least one of \"absorption\", \"steps\", \"visits\"".into(),
         }]));
     }
-    let chain = validate(&request.chain).map_err(ApiError::Invalid)?;
+    let chain = validate(&request.chain, &request.parameters).map_err(ApiError::Invalid)?;
     let plan = Plan {
         arithmetic: request.arithmetic,
         report: request.report.into_iter().collect::<BTreeSet<_>>(),

@@ -19,8 +19,15 @@ pub struct Chain {
     /// Probability of each transition; all positive, each row summing to 1. Absorbing states
     /// have empty rows (their self-loop is implied).
     pub probabilities: Vec<BigRational>,
+    /// For each transition, the derivative of its probability with respect to each parameter
+    /// (empty rows when the chain has no parameters).
+    pub gradients: Vec<Vec<BigRational>>,
     /// The start distribution: states with positive probability, summing to 1.
     pub start: Vec<(usize, BigRational)>,
+    /// For each start entry, the derivative of its probability with respect to each parameter.
+    pub start_gradients: Vec<Vec<BigRational>>,
+    /// The parameters and the values in force, in the chain's order.
+    pub parameters: Vec<(String, BigRational)>,
     /// Things worth telling the caller that are not errors.
     pub warnings: Vec<String>,
 }
@@ -45,6 +52,15 @@ impl Chain {
             .iter()
             .copied()
             .zip(&self.probabilities[span])
+    }
+
+    /// The transitions out of `state` as `(target, gradient of the probability)`.
+    pub fn row_gradients(&self, state: usize) -> impl Iterator<Item = (usize, &[BigRational])> {
+        let span = self.row_start[state]..self.row_start[state + 1];
+        self.targets[span.clone()]
+            .iter()
+            .copied()
+            .zip(self.gradients[span].iter().map(Vec::as_slice))
     }
 
     /// Number of transitions with positive probability (implied self-loops excluded).

@@ -8,6 +8,7 @@ use num_traits::{One, Signed, Zero};
 use oddsmith_client::types::{ChainSpec, Cost, StartSpec, StateSpec, Value};
 
 use super::chain::Chain;
+use super::expr::{parse, Dual};
 use super::value::{exact_text, parse_exact};
 
 /// One problem found in a request, located by a JSON pointer (RFC 6901).
@@ -25,22 +26,62 @@ pub fn pointer_token(token: &str) -> String {
     token.replace('~', "~0").replace('/', "~1")
 }
 
-/// Collects issues while validating.
+/// Collects issues while validating, and evaluates values at the parameters in force.
 #[derive(Default)]
-struct Issues(Vec<Issue>);
+struct Issues {
+    found: Vec<Issue>,
+    /// Parameter names, in order.
+    names: Vec<String>,
+    /// Their values in force.
+    values: Vec<BigRational>,
+}
 
 impl Issues {
     fn add(&mut self, pointer: impl Into<String>, detail: impl Into<String>) {
-        self.0.push(Issue {
+        self.found.push(Issue {
             pointer: pointer.into(),
             detail: detail.into(),
         });
     }
 
-    /// Parses a value, recording an issue (and returning `None`) when it is not a number.
-    fn number(&mut self, value: &Value, pointer: String) -> Option<BigRational> {
-        match parse_exact(&value.text()) {
-            Ok(number) => Some(number),
+    /// " (with drop = 1/40)" when the chain has parameters: problems that depend on the values
+    /// in force say which values those were.
+    fn at_values(&self) -> String {
+        if self.names.is_empty() {
+            return String::new();
+        }
+        let list: Vec<String> = self
+            .names
+            .iter()
+            .zip(&self.values)
+            .map(|(n, v)| format!("{n} = {}", exact_text(v)))
+            .collect();
+        format!(" (with {})", list.join(", "))
+    }
+
+    /// Evaluates a number or an expression, recording an issue (and returning `None`) when it
+    /// is neither.
+    fn value(&mut self, value: &Value, pointer: String) -> Option<Dual> {
+        let parameters = self.names.len();
+        let result = match value {
+            Value::Number(n) => parse_exact(&n.to_string()).map(|v| Dual::constant(v, parameters)),
+            Value::Text(text) => match parse_exact(text) {
+                Ok(v) => Ok(Dual::constant(v, parameters)),
+                // A numeral that is out of bounds says so; anything else may be an expression.
+                Err(detail) if !detail.contains("is not a number") => Err(detail),
+                Err(_) => parse(text, &self.names)
+                    .and_then(|e| e.evaluate(&self.values))
+                    .map_err(|e| {
+                        if e.column == 0 {
+                            format!("{}{}", e.message, self.at_values())
+                        } else {
+                            e.to_string()
+                        }
+                    }),
+            },
+        };
+        match result {
+            Ok(dual) => Some(dual),
             Err(detail) => {
                 self.add(pointer, detail);
                 None
@@ -48,14 +89,16 @@ impl Issues {
         }
     }
 
-    /// Parses a probability in [0, 1].
-    fn probability(&mut self, value: &Value, pointer: String) -> Option<BigRational> {
-        let p = self.number(value, pointer.clone())?;
-        if p.is_negative() || p > BigRational::one() {
-            self.add(
-                pointer,
-                format!("a probability must lie in [0, 1]; got {}", exact_text(&p)),
+    /// Evaluates a probability in [0, 1].
+    fn probability(&mut self, value: &Value, pointer: String) -> Option<Dual> {
+        let p = self.value(value, pointer.clone())?;
+        if p.value.is_negative() || p.value > BigRational::one() {
+            let detail = format!(
+                "a probability must lie in [0, 1]; got {}{}",
+                exact_text(&p.value),
+                self.at_values()
             );
+            self.add(pointer, detail);
             return None;
         }
         Some(p)
@@ -67,7 +110,58 @@ impl Issues {
             if dimension.trim().is_empty() {
                 self.add(at.clone(), "a cost dimension needs a non-empty name");
             }
-            self.number(amount, at);
+            self.value(amount, at);
+        }
+    }
+
+    /// Reads the chain's parameters and the request's overrides.
+    fn parameters(
+        &mut self,
+        declared: &BTreeMap<String, Value>,
+        overrides: &BTreeMap<String, Value>,
+    ) {
+        for (name, value) in declared {
+            let at = format!("/chain/parameters/{}", pointer_token(name));
+            let mut chars = name.chars();
+            let identifier = chars.next().is_some_and(|c| c.is_alphabetic() || c == '_')
+                && chars.all(|c| c.is_alphanumeric() || c == '_');
+            if !identifier {
+                self.add(
+                    at.clone(),
+                    format!("'{name}' is not a parameter name: use letters, digits and _, not starting with a digit"),
+                );
+            }
+            let number = parse_exact(&value.text()).unwrap_or_else(|detail| {
+                self.add(
+                    at,
+                    format!("a parameter's default must be a number: {detail}"),
+                );
+                BigRational::zero()
+            });
+            self.names.push(name.clone());
+            self.values.push(number);
+        }
+        for (name, value) in overrides {
+            let at = format!("/parameters/{}", pointer_token(name));
+            match self.names.iter().position(|n| n == name) {
+                None if self.names.is_empty() => {
+                    self.add(
+                        at,
+                        format!("unknown parameter '{name}': the chain declares no `parameters`"),
+                    );
+                }
+                None => {
+                    let known = self.names.join(", ");
+                    self.add(
+                        at,
+                        format!("unknown parameter '{name}'; the chain declares {known}"),
+                    );
+                }
+                Some(i) => match parse_exact(&value.text()) {
+                    Ok(number) => self.values[i] = number,
+                    Err(detail) => self.add(at, detail),
+                },
+            }
         }
     }
 }
@@ -94,15 +188,21 @@ struct Row {
     /// Some value in the row was invalid (already reported): skip the row's own checks.
     broken: bool,
     /// Target -> (summed value, indices of the transitions that gave it).
-    targets: BTreeMap<usize, (BigRational, Vec<usize>)>,
+    targets: BTreeMap<usize, (Dual, Vec<usize>)>,
 }
 
-/// Validates a chain description.
+/// Validates a chain description at its parameters' values, with `overrides` (the request's
+/// `parameters`) replacing the chain's defaults.
 ///
 /// # Errors
-/// Every problem found, each with a JSON pointer below `/chain`.
-pub fn validate(spec: &ChainSpec) -> Result<Chain, Vec<Issue>> {
+/// Every problem found, each with a JSON pointer below `/chain` (or `/parameters`).
+pub fn validate(
+    spec: &ChainSpec,
+    overrides: &BTreeMap<String, Value>,
+) -> Result<Chain, Vec<Issue>> {
     let mut issues = Issues::default();
+    issues.parameters(&spec.parameters, overrides);
+    let parameter_count = issues.names.len();
     let mut ids: Vec<String> = Vec::new();
     let mut index: HashMap<String, usize> = HashMap::new();
     let mut intern = |id: &str, ids: &mut Vec<String>| -> usize {
@@ -159,14 +259,16 @@ pub fn validate(spec: &ChainSpec) -> Result<Chain, Vec<Issue>> {
                 issues.probability(p, format!("{at}/probability")),
             ),
             (None, Some(w)) => {
-                let weight = issues.number(w, format!("{at}/weight"));
+                let weight = issues.value(w, format!("{at}/weight"));
                 let weight = weight.filter(|w| {
-                    let ok = !w.is_negative();
+                    let ok = !w.value.is_negative();
                     if !ok {
-                        issues.add(
-                            format!("{at}/weight"),
-                            format!("a weight must not be negative; got {}", exact_text(w)),
+                        let detail = format!(
+                            "a weight must not be negative; got {}{}",
+                            exact_text(&w.value),
+                            issues.at_values()
                         );
+                        issues.add(format!("{at}/weight"), detail);
                     }
                     ok
                 });
@@ -201,11 +303,13 @@ pub fn validate(spec: &ChainSpec) -> Result<Chain, Vec<Issue>> {
             continue;
         };
         {
-            let entry = row
-                .targets
-                .entry(to)
-                .or_insert_with(|| (BigRational::zero(), Vec::new()));
-            entry.0 += value;
+            let entry = row.targets.entry(to).or_insert_with(|| {
+                (
+                    Dual::constant(BigRational::zero(), parameter_count),
+                    Vec::new(),
+                )
+            });
+            entry.0.add_assign(&value);
             entry.1.push(k);
         }
     }
@@ -224,6 +328,7 @@ pub fn validate(spec: &ChainSpec) -> Result<Chain, Vec<Issue>> {
     let mut row_start = Vec::with_capacity(n + 1);
     let mut targets = Vec::new();
     let mut probabilities = Vec::new();
+    let mut gradients = Vec::new();
     for (state, id) in ids.iter().enumerate() {
         row_start.push(targets.len());
         let Some(row) = rows.remove(&state) else {
@@ -247,7 +352,10 @@ pub fn validate(spec: &ChainSpec) -> Result<Chain, Vec<Issue>> {
                 ));
             }
         }
-        let total: BigRational = row.targets.values().map(|(v, _)| v.clone()).sum();
+        let mut total = Dual::constant(BigRational::zero(), parameter_count);
+        for (value, _) in row.targets.values() {
+            total.add_assign(value);
+        }
         let row_at = format!("/chain/transitions/{first_at}");
         let sources = || {
             let mut all: Vec<usize> = row.targets.values().flat_map(|(_, s)| s.clone()).collect();
@@ -258,36 +366,42 @@ pub fn validate(spec: &ChainSpec) -> Result<Chain, Vec<Issue>> {
                 .join(", ")
         };
         match kind {
-            RowKind::Probability if !total.is_one() => {
-                issues.add(
-                    row_at,
-                    format!(
-                        "probabilities out of '{id}' sum to {} (≈ {}), not 1 (transitions {}); \
-                         write repeating decimals as fractions such as \"1/3\", or use weights",
-                        exact_text(&total),
-                        super::value::to_f64(&total),
-                        sources()
-                    ),
+            RowKind::Probability if !total.value.is_one() => {
+                let detail = format!(
+                    "probabilities out of '{id}' sum to {} (≈ {}), not 1 (transitions {}){}; \
+                     write repeating decimals as fractions such as \"1/3\", or use weights",
+                    exact_text(&total.value),
+                    super::value::to_f64(&total.value),
+                    sources(),
+                    issues.at_values()
                 );
+                issues.add(row_at, detail);
                 continue;
             }
-            RowKind::Weight if total.is_zero() => {
-                issues.add(
-                    row_at,
-                    format!(
-                        "weights out of '{id}' sum to 0 (transitions {}); at least one must be \
-                         positive",
-                        sources()
-                    ),
+            RowKind::Weight if total.value.is_zero() => {
+                let detail = format!(
+                    "weights out of '{id}' sum to 0 (transitions {}){}; at least one must be \
+                     positive",
+                    sources(),
+                    issues.at_values()
                 );
+                issues.add(row_at, detail);
                 continue;
+            }
+            RowKind::Probability if total.gradient.iter().any(|g| !g.is_zero()) => {
+                warnings.push(format!(
+                    "probabilities out of '{id}' sum to 1 at these parameter values but not \
+                     nearby (transitions {}); sensitivities assume the row stays a distribution, \
+                     so write the last probability as 1 minus the others",
+                    sources()
+                ));
             }
             _ => {}
         }
         let leaves = row
             .targets
             .iter()
-            .any(|(&target, (v, _))| target != state && !v.is_zero());
+            .any(|(&target, (v, _))| target != state && !v.value.is_zero());
         if !leaves {
             // Only a self-loop (possibly beside zero-probability edges): absorbing by rule.
             absorbing[state] = true;
@@ -304,43 +418,48 @@ pub fn validate(spec: &ChainSpec) -> Result<Chain, Vec<Issue>> {
             );
         }
         for (target, (value, _)) in row.targets {
-            if !value.is_zero() {
+            if !value.value.is_zero() {
+                let probability = value.ratio(&total);
                 targets.push(target);
-                probabilities.push(value / &total);
+                probabilities.push(probability.value);
+                gradients.push(probability.gradient);
             }
         }
     }
     row_start.push(targets.len());
 
-    let start = validate_start(&spec.start, &ids, &mut issues);
+    let (start, start_gradients) = validate_start(&spec.start, &ids, &mut issues)
+        .into_iter()
+        .map(|(state, p)| ((state, p.value), p.gradient))
+        .unzip();
 
-    if issues.0.is_empty() {
+    if issues.found.is_empty() {
         Ok(Chain {
             ids,
             absorbing,
             row_start,
             targets,
             probabilities,
+            gradients,
             start,
+            start_gradients,
+            parameters: issues.names.into_iter().zip(issues.values).collect(),
             warnings,
         })
     } else {
-        Err(issues.0)
+        Err(issues.found)
     }
 }
 
-fn validate_start(
-    start: &StartSpec,
-    ids: &[String],
-    issues: &mut Issues,
-) -> Vec<(usize, BigRational)> {
+fn validate_start(start: &StartSpec, ids: &[String], issues: &mut Issues) -> Vec<(usize, Dual)> {
     let find = |id: &str| ids.iter().position(|known| known == id);
     let unknown = |id: &str| {
         format!("unknown state '{id}': a start state must be declared or appear in a transition")
     };
+    let parameter_count = issues.names.len();
     match start {
         StartSpec::State(id) => match find(id) {
-            Some(i) => vec![(i, BigRational::one())],
+            Some(i) => vec![(i, Dual::constant(BigRational::one(), parameter_count))],
             None => {
                 issues.add("/chain/start", unknown(id));
                 Vec::new()
@@ -354,8 +473,9 @@ fn validate_start(
                 );
                 return Vec::new();
             }
-            let mut total = BigRational::zero();
+            let mut total = Dual::constant(BigRational::zero(), parameter_count);
             let mut distribution = Vec::new();
+            let before = issues.found.len();
             for (id, value) in weights {
                 let at = format!("/chain/start/{}", pointer_token(id));
                 let p = issues.probability(value, at.clone());
@@ -363,19 +483,21 @@ fn validate_start(
                     None => issues.add(at, unknown(id)),
                     Some(i) => {
                         if let Some(p) = p {
-                            total += &p;
-                            if !p.is_zero() {
+                            total.add_assign(&p);
+                            if !p.value.is_zero() {
                                 distribution.push((i, p));
                             }
                         }
                     }
                 }
             }
-            if !total.is_one() && issues.0.is_empty() {
-                issues.add(
-                    "/chain/start",
-                    format!("start probabilities sum to {}, not 1", exact_text(&total)),
+            if !total.value.is_one() && issues.found.len() == before {
+                let detail = format!(
+                    "start probabilities sum to {}, not 1{}",
+                    exact_text(&total.value),
+                    issues.at_values()
                 );
+                issues.add("/chain/start", detail);
             }
             distribution.sort_by_key(|(i, _)| *i);
             distribution
@@ -389,7 +511,7 @@ mod tests {
     use serde_json::json;
 
     fn check(chain: serde_json::Value) -> Result<Chain, Vec<Issue>> {
-        validate(&serde_json::from_value(chain).unwrap())
+        validate(&serde_json::from_value(chain).unwrap(), &BTreeMap::new())
     }
 
     fn pointers(issues: &[Issue]) -> Vec<&str> {

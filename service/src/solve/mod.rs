@@ -13,13 +13,15 @@
 pub mod budget;
 pub mod elimination;
 pub mod scalar;
+pub mod sensitivity;
 
 use std::collections::{BTreeMap, BTreeSet};
 use std::time::Duration;
 
 use num_rational::BigRational;
 use oddsmith_client::types::{
-    Arithmetic, Metrics, Report, SolveResponse, SolverInfo, Steps, UsedArithmetic,
+    Arithmetic, Derivative, Metrics, Report, Sensitivity, SolveResponse, SolverInfo, Steps,
+    UsedArithmetic,
 };
 
 use crate::model::chain::Chain;
@@ -27,6 +29,7 @@ use crate::structure::{StateKind, Structure};
 use budget::Budget;
 use elimination::{multiply, Factors, SparseRow};
 use scalar::Scalar;
+use sensitivity::{differentiate, elasticity, Perturbation};
 
 /// Cost model of exact solving used by `auto`: seconds per (factor entry x transient state),
 /// fitted on the 2-core reference machine in a release build (see DEVELOPERS.md, "Exact or float").
@@ -128,8 +131,15 @@ fn check_size(chain: &Chain, structure: &Structure, plan: &Plan) -> Result<(), S
             Report::Absorption => structure.absorbing.len() + 1,
             Report::Steps => structure.absorbing.len() + 2,
             Report::Visits => chain.len() - structure.absorbing.len(),
+            // Sensitivities repeat the other metrics once per parameter (counted below).
+            Report::Sensitivity => 0,
         })
         .sum::<usize>();
+    let per_start = if plan.report.contains(&Report::Sensitivity) {
+        per_start.saturating_mul(1 + 2 * chain.parameters.len())
+    } else {
+        per_start
+    };
     let starts = if plan.by_state {
         1 + chain.len() - structure.absorbing.len()
     } else {
@@ -165,14 +175,30 @@ struct Solution<'a, S> {
     structure: &'a Structure,
     /// Outcome index of each absorbing state (trap classes follow the absorbing states).
     outcome_of: Vec<Option<usize>>,
+    /// The vectors at the parameters' values.
+    at: Vectors<S>,
+    /// Their derivatives with respect to each parameter (when sensitivities are reported).
+    derivatives: Vec<Vectors<S>>,
+}
+
+/// The per-state solution vectors (over transient positions).
+struct Vectors<S> {
     /// `outcome[k][p]`: probability of ending in outcome `k` from transient position `p`.
     outcome: Vec<Vec<S>>,
     /// Expected steps from each transient position (to absorption or a trap).
     steps: Vec<S>,
-    /// Second moment of the number of steps from each transient position.
+    /// `N t`, from which the second moment `2 N t - t` follows.
+    steps_twice: Vec<S>,
+    /// Second moment of the number of steps.
     second_moment: Vec<S>,
     /// `E[T; ends in a]` for each absorbing outcome.
     steps_and_outcome: Vec<Vec<S>>,
+}
+
+/// Expected visits from one start, and their derivatives with respect to each parameter.
+struct Visits<S> {
+    at: Vec<S>,
+    derivatives: Vec<Vec<S>>,
 }
 
 fn run<S: Scalar>(
@@ -207,62 +233,138 @@ fn run<S: Scalar>(
         Ok(x)
     };
     let outcome: Vec<Vec<S>> = rhs.into_iter().map(&mut solve).collect::<Result<_, _>>()?;
-    let wants_steps = plan.report.contains(&Report::Steps);
-    let (steps, second_moment, steps_and_outcome) = if wants_steps {
+    let at = if plan.report.contains(&Report::Steps) {
         let steps = solve(vec![S::one(); n])?;
-        let twice_n_t = solve(steps.clone())?;
-        let second_moment = twice_n_t
-            .iter()
-            .zip(&steps)
-            .map(|(w, t)| w.add(w).sub(t))
-            .collect();
+        let steps_twice = solve(steps.clone())?;
         let steps_and_outcome = outcome[..absorbing_count]
             .iter()
             .map(|b| solve(b.clone()))
             .collect::<Result<_, _>>()?;
-        (steps, second_moment, steps_and_outcome)
+        Vectors {
+            second_moment: second_moment(&steps_twice, &steps),
+            outcome,
+            steps,
+            steps_twice,
+            steps_and_outcome,
+        }
     } else {
-        (Vec::new(), Vec::new(), Vec::new())
+        Vectors {
+            outcome,
+            steps: Vec::new(),
+            steps_twice: Vec::new(),
+            second_moment: Vec::new(),
+            steps_and_outcome: Vec::new(),
+        }
     };
+
+    let sensitivities = plan.report.contains(&Report::Sensitivity);
+    let parameters = if sensitivities {
+        chain.parameters.len()
+    } else {
+        0
+    };
+    let perturbations: Vec<Perturbation<S>> = (0..parameters)
+        .map(|j| Perturbation::new(chain, structure, j))
+        .collect();
+    let mut derivatives = Vec::with_capacity(parameters);
+    for perturbation in &perturbations {
+        budget.check()?;
+        let d = |x: &[S], db: Option<&[S]>| differentiate(&factors, perturbation, x, db, budget);
+        let outcome: Vec<Vec<S>> = at
+            .outcome
+            .iter()
+            .enumerate()
+            .map(|(k, b)| d(b, Some(perturbation.dr(k))))
+            .collect::<Result<_, _>>()?;
+        let vectors = if at.steps.is_empty() {
+            Vectors {
+                outcome,
+                steps: Vec::new(),
+                steps_twice: Vec::new(),
+                second_moment: Vec::new(),
+                steps_and_outcome: Vec::new(),
+            }
+        } else {
+            let steps = d(&at.steps, None)?;
+            let steps_twice = d(&at.steps_twice, Some(&steps))?;
+            let steps_and_outcome = at
+                .steps_and_outcome
+                .iter()
+                .zip(&outcome)
+                .map(|(y, db)| d(y, Some(db)))
+                .collect::<Result<_, _>>()?;
+            Vectors {
+                second_moment: second_moment(&steps_twice, &steps),
+                outcome,
+                steps,
+                steps_twice,
+                steps_and_outcome,
+            }
+        };
+        derivatives.push(vectors);
+    }
 
     let solution = Solution {
         chain,
         structure,
         outcome_of,
-        outcome,
-        steps,
-        second_moment,
-        steps_and_outcome,
+        at,
+        derivatives,
     };
     let wants_visits = plan.report.contains(&Report::Visits);
-    let mut visits_from = |start: &[(usize, BigRational)]| -> Result<Option<Vec<S>>, SolveError> {
+    // Visits from a start s are sᵀ N, so d/dθ is (dsᵀ + vᵀ dQ) N: one transposed solve each.
+    let mut visits_from = |start: &[(usize, S)],
+                           start_gradients: &[Vec<S>]|
+     -> Result<Option<Visits<S>>, SolveError> {
         if !wants_visits {
             return Ok(None);
         }
         let mut c = vec![S::zero(); n];
         for (state, mass) in start {
             if let Some(p) = structure.position[*state] {
-                c[p] = S::from_rational(mass);
+                c[p] = mass.clone();
             }
         }
         let x = factors.solve_transposed(c.clone(), budget)?;
         if !S::EXACT {
             max_residual = max_residual.max(residual_transposed(&rows, &x, &c));
         }
-        Ok(Some(x))
+        let mut derivatives = Vec::with_capacity(perturbations.len());
+        for (j, perturbation) in perturbations.iter().enumerate() {
+            let mut ds = vec![S::zero(); n];
+            for ((state, _), gradient) in start.iter().zip(start_gradients) {
+                if let Some(p) = structure.position[*state] {
+                    ds[p] = gradient[j].clone();
+                }
+            }
+            let rhs = perturbation.dq_transposed_times_plus(&x, ds);
+            derivatives.push(factors.solve_transposed(rhs, budget)?);
+        }
+        Ok(Some(Visits { at: x, derivatives }))
     };
 
-    let visits = visits_from(&chain.start)?;
-    let metrics = solution.metrics(&chain.start, visits.as_deref(), plan);
+    let start: Vec<(usize, S)> = chain
+        .start
+        .iter()
+        .map(|(state, mass)| (*state, S::from_rational(mass)))
+        .collect();
+    let start_gradients: Vec<Vec<S>> = chain
+        .start_gradients
+        .iter()
+        .map(|g| g.iter().map(S::from_rational).collect())
+        .collect();
+    let visits = visits_from(&start, &start_gradients)?;
+    let metrics = solution.metrics(&start, &start_gradients, visits.as_ref(), plan);
     let by_state = if plan.by_state {
         let mut table = BTreeMap::new();
+        let still = vec![vec![S::zero(); parameters]];
         for state in (0..chain.len()).filter(|&s| structure.kind[s] != StateKind::Absorbing) {
             budget.check()?;
-            let start = [(state, num_traits::One::one())];
-            let visits = visits_from(&start)?;
+            let start = [(state, S::one())];
+            let visits = visits_from(&start, &still)?;
             table.insert(
                 chain.ids[state].clone(),
-                solution.metrics(&start, visits.as_deref(), plan),
+                solution.metrics(&start, &still, visits.as_ref(), plan),
             );
         }
         Some(table)
@@ -271,6 +373,10 @@ fn run<S: Scalar>(
     };
 
     let mut warnings = chain.warnings.clone();
+    if plan.report.contains(&Report::Sensitivity) && chain.parameters.is_empty() {
+        warnings
+            .push("`sensitivity` was asked for, but the chain declares no `parameters`".to_owned());
+    }
     warnings.extend(solution.trap_warning(plan.by_state));
     if !S::EXACT {
         warnings.extend(solution.verification_warning());
@@ -368,6 +474,15 @@ fn linear_system<S: Scalar>(
     })
 }
 
+/// `2 N t - t` from `N t` and `t`.
+fn second_moment<S: Scalar>(steps_twice: &[S], steps: &[S]) -> Vec<S> {
+    steps_twice
+        .iter()
+        .zip(steps)
+        .map(|(w, t)| w.add(w).sub(t))
+        .collect()
+}
+
 /// `max |A x - b|`.
 fn residual<S: Scalar>(rows: &[SparseRow<S>], x: &[S], b: &[S]) -> f64 {
     multiply(rows, x)
@@ -392,13 +507,21 @@ fn residual_transposed<S: Scalar>(rows: &[SparseRow<S>], x: &[S], c: &[S]) -> f6
 }
 
 impl<S: Scalar> Solution<'_, S> {
-    /// Probability of ending in outcome `k` when starting in `state`.
-    fn outcome_probability(&self, state: usize, k: usize) -> S {
+    /// Probability of ending in outcome `k` when starting in `state`, from `vectors` (the
+    /// values, or a derivative: absorbing and trapped starts have constant outcomes).
+    fn outcome_probability(
+        &self,
+        vectors: &Vectors<S>,
+        state: usize,
+        k: usize,
+        derivative: bool,
+    ) -> S {
         let absorbing_count = self.structure.absorbing.len();
         match self.structure.kind[state] {
             StateKind::Transient => {
-                self.outcome[k][self.structure.position[state].expect("transient")].clone()
+                vectors.outcome[k][self.structure.position[state].expect("transient")].clone()
             }
+            _ if derivative => S::zero(),
             StateKind::Absorbing if self.outcome_of[state] == Some(k) => S::one(),
             StateKind::Trapped
                 if self.structure.trap_class_of[state].map(|c| c + absorbing_count) == Some(k) =>
@@ -419,30 +542,120 @@ impl<S: Scalar> Solution<'_, S> {
         })
     }
 
-    /// The metrics from a start distribution; `visits` is `sᵀ N` when visits are reported.
+    /// `d/dθ Σ s_i v_i = Σ ds_i v_i + s_i dv_i`.
+    fn weighted_derivative(
+        &self,
+        start: &[(usize, S)],
+        ds: &[S],
+        values: &[S],
+        dvalues: &[S],
+    ) -> S {
+        self.weighted(start, dvalues).add(
+            &self.weighted(
+                &start
+                    .iter()
+                    .zip(ds)
+                    .map(|((state, _), d)| (*state, d.clone()))
+                    .collect::<Vec<_>>(),
+                values,
+            ),
+        )
+    }
+
+    /// Probability of ending in outcome `k` from a start distribution, or its derivative with
+    /// respect to parameter `j` (when `j` is given, with the start's gradients).
+    fn outcome_mass(
+        &self,
+        start: &[(usize, S)],
+        gradients: &[Vec<S>],
+        k: usize,
+        j: Option<usize>,
+    ) -> S {
+        let mut sum = S::zero();
+        for (e, (state, mass)) in start.iter().enumerate() {
+            match j {
+                None => {
+                    sum = sum.add(&mass.mul(&self.outcome_probability(&self.at, *state, k, false)))
+                }
+                Some(j) => {
+                    let value = self.outcome_probability(&self.at, *state, k, false);
+                    let derivative =
+                        self.outcome_probability(&self.derivatives[j], *state, k, true);
+                    sum = sum
+                        .add(&gradients[e][j].mul(&value))
+                        .add(&mass.mul(&derivative));
+                }
+            }
+        }
+        sum
+    }
+
+    /// The metrics from a start distribution (with the gradients of its probabilities);
+    /// `visits` is `sᵀ N` when visits are reported.
     fn metrics(
         &self,
-        start: &[(usize, BigRational)],
-        visits: Option<&[S]>,
+        start: &[(usize, S)],
+        gradients: &[Vec<S>],
+        visits: Option<&Visits<S>>,
         plan: &Plan,
     ) -> Metrics {
-        let start: Vec<(usize, S)> = start
-            .iter()
-            .map(|(s, m)| (*s, S::from_rational(m)))
-            .collect();
         let ids = &self.chain.ids;
         let absorbing_count = self.structure.absorbing.len();
-        let outcome_mass = |k: usize| {
-            start.iter().fold(S::zero(), |sum, (state, mass)| {
-                sum.add(&mass.mul(&self.outcome_probability(*state, k)))
-            })
-        };
-        let absorbed: Vec<S> = (0..absorbing_count).map(outcome_mass).collect();
-        let trapped: Vec<S> = (absorbing_count
-            ..absorbing_count + self.structure.trap_classes.len())
-            .map(outcome_mass)
+        let outcome_count = absorbing_count + self.structure.trap_classes.len();
+        let absorbed: Vec<S> = (0..absorbing_count)
+            .map(|k| self.outcome_mass(start, gradients, k, None))
+            .collect();
+        let trapped: Vec<S> = (absorbing_count..outcome_count)
+            .map(|k| self.outcome_mass(start, gradients, k, None))
             .collect();
         let never = trapped.iter().fold(S::zero(), |sum, p| sum.add(p));
+        let finite = never.is_zero();
+        let wants_steps = plan.report.contains(&Report::Steps);
+        let mean = if wants_steps {
+            self.weighted(start, &self.at.steps)
+        } else {
+            S::zero()
+        };
+        let second = if wants_steps {
+            self.weighted(start, &self.at.second_moment)
+        } else {
+            S::zero()
+        };
+        let variance = {
+            let v = second.sub(&mean.mul(&mean));
+            // Rounding can leave a tiny negative where the variance is 0.
+            let tolerance = 1e-9 * mean.to_f64().powi(2).max(1.0);
+            if !S::EXACT && v.to_f64() < 0.0 && v.to_f64() > -tolerance {
+                S::zero()
+            } else {
+                v
+            }
+        };
+        // E[T; a] and E[T | a] for each absorbing outcome.
+        let joint: Vec<S> = if wants_steps {
+            (0..absorbing_count)
+                .map(|k| self.weighted(start, &self.at.steps_and_outcome[k]))
+                .collect()
+        } else {
+            Vec::new()
+        };
+        let given = |k: usize| (!absorbed[k].is_zero()).then(|| joint[k].div(&absorbed[k]));
+        let visit_value = |state: usize| -> Option<S> {
+            let visits = visits?;
+            match self.structure.kind[state] {
+                StateKind::Absorbing => None,
+                StateKind::Transient => {
+                    Some(visits.at[self.structure.position[state].expect("transient")].clone())
+                }
+                StateKind::Trapped => {
+                    let class = self.structure.trap_class_of[state].expect("trapped");
+                    trapped[class].is_zero().then(S::zero)
+                }
+            }
+        };
+        let non_absorbing =
+            || (0..self.chain.len()).filter(|&s| self.structure.kind[s] != StateKind::Absorbing);
+
         let mut metrics = Metrics::default();
         if plan.report.contains(&Report::Absorption) {
             metrics.absorption = Some(
@@ -455,63 +668,115 @@ impl<S: Scalar> Solution<'_, S> {
             );
             metrics.never_absorbed = Some(never.to_number());
         }
-        if plan.report.contains(&Report::Steps) {
-            let finite = never.is_zero();
-            let mean = self.weighted(&start, &self.steps);
-            let variance = {
-                let v = self
-                    .weighted(&start, &self.second_moment)
-                    .sub(&mean.mul(&mean));
-                // Rounding can leave a tiny negative where the variance is 0.
-                let tolerance = 1e-9 * mean.to_f64().powi(2).max(1.0);
-                if !S::EXACT && v.to_f64() < 0.0 && v.to_f64() > -tolerance {
-                    S::zero()
-                } else {
-                    v
-                }
-            };
-            let mean_given = self
-                .structure
-                .absorbing
-                .iter()
-                .enumerate()
-                .map(|(k, &a)| {
-                    let p = &absorbed[k];
-                    let given = (!p.is_zero()).then(|| {
-                        self.weighted(&start, &self.steps_and_outcome[k])
-                            .div(p)
-                            .to_number()
-                    });
-                    (ids[a].clone(), given)
-                })
-                .collect();
+        if wants_steps {
             metrics.steps = Some(Steps {
                 mean: finite.then(|| mean.to_number()),
                 variance: finite.then(|| variance.to_number()),
-                mean_given,
+                mean_given: self
+                    .structure
+                    .absorbing
+                    .iter()
+                    .enumerate()
+                    .map(|(k, &a)| (ids[a].clone(), given(k).map(|g| g.to_number())))
+                    .collect(),
             });
         }
-        if let Some(visits) = visits {
+        if visits.is_some() {
             metrics.visits = Some(
-                (0..self.chain.len())
-                    .filter_map(|state| match self.structure.kind[state] {
-                        StateKind::Absorbing => None,
-                        StateKind::Transient => {
-                            let p = self.structure.position[state].expect("transient");
-                            Some((ids[state].clone(), Some(visits[p].to_number())))
-                        }
-                        StateKind::Trapped => {
-                            let class = self.structure.trap_class_of[state].expect("trapped");
-                            let reached = !trapped[class].is_zero();
-                            Some((
-                                ids[state].clone(),
-                                (!reached).then(|| S::zero().to_number()),
-                            ))
-                        }
-                    })
+                non_absorbing()
+                    .map(|s| (ids[s].clone(), visit_value(s).map(|v| v.to_number())))
                     .collect(),
             );
         }
+        if !plan.report.contains(&Report::Sensitivity) {
+            return metrics;
+        }
+
+        let mut sensitivity = BTreeMap::new();
+        for (j, (name, value)) in self.chain.parameters.iter().enumerate() {
+            let theta = S::from_rational(value);
+            let ds: Vec<S> = gradients.iter().map(|g| g[j].clone()).collect();
+            let d = &self.derivatives[j];
+            let entry = |metric: Option<&S>, derivative: Option<S>| Derivative {
+                elasticity: match (metric, &derivative) {
+                    (Some(m), Some(dm)) => elasticity(dm, &theta, m).map(|e| e.to_number()),
+                    _ => None,
+                },
+                derivative: derivative.map(|dm| dm.to_number()),
+            };
+            let mut report = Sensitivity::default();
+            let d_absorbed: Vec<S> = (0..outcome_count)
+                .map(|k| self.outcome_mass(start, gradients, k, Some(j)))
+                .collect();
+            if plan.report.contains(&Report::Absorption) {
+                report.absorption = Some(
+                    self.structure
+                        .absorbing
+                        .iter()
+                        .enumerate()
+                        .map(|(k, &a)| {
+                            (
+                                ids[a].clone(),
+                                entry(Some(&absorbed[k]), Some(d_absorbed[k].clone())),
+                            )
+                        })
+                        .collect(),
+                );
+                let d_never = d_absorbed[absorbing_count..]
+                    .iter()
+                    .fold(S::zero(), |sum, p| sum.add(p));
+                report.never_absorbed = Some(entry(Some(&never), Some(d_never)));
+            }
+            if wants_steps {
+                let d_mean = self.weighted_derivative(start, &ds, &self.at.steps, &d.steps);
+                let d_second =
+                    self.weighted_derivative(start, &ds, &self.at.second_moment, &d.second_moment);
+                let d_variance = d_second.sub(&mean.add(&mean).mul(&d_mean));
+                report.steps_mean = Some(entry(Some(&mean), finite.then_some(d_mean)));
+                report.steps_variance = Some(entry(Some(&variance), finite.then_some(d_variance)));
+                report.steps_mean_given = Some(
+                    self.structure
+                        .absorbing
+                        .iter()
+                        .enumerate()
+                        .map(|(k, &a)| {
+                            let g = given(k);
+                            // (Y / P)' = (Y' P - Y P') / P²
+                            let derivative = g.as_ref().map(|_| {
+                                let d_joint = self.weighted_derivative(
+                                    start,
+                                    &ds,
+                                    &self.at.steps_and_outcome[k],
+                                    &d.steps_and_outcome[k],
+                                );
+                                d_joint
+                                    .mul(&absorbed[k])
+                                    .sub(&joint[k].mul(&d_absorbed[k]))
+                                    .div(&absorbed[k].mul(&absorbed[k]))
+                            });
+                            (ids[a].clone(), entry(g.as_ref(), derivative))
+                        })
+                        .collect(),
+                );
+            }
+            if let Some(visits) = visits {
+                report.visits = Some(
+                    non_absorbing()
+                        .map(|s| {
+                            let value = visit_value(s);
+                            let derivative =
+                                value.as_ref().map(|_| match self.structure.position[s] {
+                                    Some(p) => visits.derivatives[j][p].clone(),
+                                    None => S::zero(),
+                                });
+                            (ids[s].clone(), entry(value.as_ref(), derivative))
+                        })
+                        .collect(),
+                );
+            }
+            sensitivity.insert(name.clone(), report);
+        }
+        metrics.sensitivity = Some(sensitivity);
         metrics
     }
 
@@ -527,7 +792,7 @@ impl<S: Scalar> Solution<'_, S> {
                 by_state
                     || self.chain.start.iter().any(|(state, _)| {
                         !self
-                            .outcome_probability(*state, absorbing_count + c)
+                            .outcome_probability(&self.at, *state, absorbing_count + c, false)
                             .is_zero()
                     })
             })
@@ -558,7 +823,7 @@ impl<S: Scalar> Solution<'_, S> {
         let mut worst: f64 = 0.0;
         for p in 0..self.structure.transient.len() {
             let mut total = 0.0;
-            for column in &self.outcome {
+            for column in &self.at.outcome {
                 let v = column[p].to_f64();
                 worst = worst.max(-v).max(v - 1.0);
                 total += v;
