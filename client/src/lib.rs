@@ -22,7 +22,7 @@
 
 pub mod types;
 
-use types::{Problem, SolveRequest, SolveResponse};
+use types::{Problem, SolveRequest, SolveResponse, SweepResponse, TuneRequest, TuneResponse};
 
 /// What can go wrong when calling the service.
 #[derive(Debug, thiserror::Error)]
@@ -76,10 +76,34 @@ impl Client {
     /// [`Error::Problem`] when the service rejects the chain or runs out of budget,
     /// [`Error::Transport`] when the call fails, [`Error::Unexpected`] for anything else.
     pub async fn solve(&self, request: &SolveRequest) -> Result<SolveResponse, Error> {
+        self.post("/v1/solve", request).await
+    }
+
+    /// Solves a chain once per sweep point (`POST /v1/solve` with `sweep` set).
+    ///
+    /// # Errors
+    /// As for [`Client::solve`].
+    pub async fn sweep(&self, request: &SolveRequest) -> Result<SweepResponse, Error> {
+        self.post("/v1/solve", request).await
+    }
+
+    /// Finds the parameter value at which a metric reaches a target (`POST /v1/tune`).
+    ///
+    /// # Errors
+    /// As for [`Client::solve`]; a target not reached in the range is an [`Error::Problem`].
+    pub async fn tune(&self, request: &TuneRequest) -> Result<TuneResponse, Error> {
+        self.post("/v1/tune", request).await
+    }
+
+    async fn post<T: serde::de::DeserializeOwned>(
+        &self,
+        path: &str,
+        body: &impl serde::Serialize,
+    ) -> Result<T, Error> {
         let response = self
             .http
-            .post(format!("{}/v1/solve", self.base_url))
-            .json(request)
+            .post(format!("{}{path}", self.base_url))
+            .json(body)
             .send()
             .await?;
         read_answer(response).await

@@ -669,3 +669,14 @@ impl<'de> Deserialize<'de> for SolveResponse {
         })
     }
 }
+
+/// Body of a successful `POST /v1/solve`: one answer, or one per point with `sweep`.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+#[serde(untagged)]
+pub enum SolveAnswer {
+    /// Without `sweep`.
+    Single(Box<SolveResponse>),
+    /// With `sweep`.
+    Sweep(SweepResponse),
+}

@@ -5,4 +5,5 @@ mod behaviour;
 mod errors;
 mod helpers;
 mod openapi;
+mod parameters;
 mod published;

@@ -41,9 +41,19 @@ async fn the_document_is_openapi_3_1_with_the_contract_field_names() {
     };
     expect(
         "SolveRequest",
-        &["chain", "arithmetic", "report", "by_state", "parameters", "sweep"],
+        &[
+            "chain",
+            "arithmetic",
+            "report",
+            "by_state",
+            "parameters",
+            "sweep",
+        ],
     );
-    expect("ChainSpec", &["states", "transitions", "start", "parameters"]);
+    expect(
+        "ChainSpec",
+        &["states", "transitions", "start", "parameters"],
+    );
     expect("Derivative", &["derivative", "elasticity"]);
     expect(
         "TransitionSpec",
@@ -54,7 +64,13 @@ async fn the_document_is_openapi_3_1_with_the_contract_field_names() {
     expect("Steps", &["mean", "variance", "mean_given"]);
     expect(
         "Metrics",
-        &["absorption", "never_absorbed", "steps", "visits", "sensitivity"],
+        &[
+            "absorption",
+            "never_absorbed",
+            "steps",
+            "visits",
+            "sensitivity",
+        ],
     );
     expect(
         "SolverInfo",

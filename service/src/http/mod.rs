@@ -44,6 +44,7 @@ impl Application {
                 .wrap(tracing_actix_web::TracingLogger::default())
                 .app_data(state.clone())
                 .service(routes::solve)
+                .service(routes::tune)
                 .service(routes::healthz)
                 .service(routes::readyz)
                 .service(routes::openapi_json)

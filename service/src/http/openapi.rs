@@ -17,7 +17,7 @@ use super::routes;
                        document with JSON pointers into the request.",
         license(name = "MIT OR Apache-2.0")
     ),
-    paths(routes::solve, routes::healthz, routes::readyz, routes::openapi_json),
+    paths(routes::solve, routes::tune, routes::healthz, routes::readyz, routes::openapi_json),
     tags(
         (name = "solve", description = "Solving chains"),
         (name = "operations", description = "Liveness, readiness and this document")

@@ -132,6 +132,15 @@ impl From<SolveError> for ApiError {
     }
 }
 
+impl From<crate::sweep::RequestError> for ApiError {
+    fn from(error: crate::sweep::RequestError) -> Self {
+        match error {
+            crate::sweep::RequestError::Invalid(issues) => ApiError::Invalid(issues),
+            crate::sweep::RequestError::Solve(solve) => solve.into(),
+        }
+    }
+}
+
 impl ResponseError for ApiError {
     fn status_code(&self) -> StatusCode {
         match self {

@@ -1,21 +1,21 @@
 //! Route handlers: read the body, hand the work to the core on the blocking pool, write the
 //! answer. No mathematics here.
 
-use std::collections::BTreeSet;
 use std::sync::Arc;
 use std::time::Duration;
 
 use actix_web::http::header;
 use actix_web::{get, post, web, HttpRequest, HttpResponse};
 use futures_util::StreamExt;
-use oddsmith_client::types::{Problem, SolveRequest, SolveResponse};
+use oddsmith_client::types::{Problem, SolveAnswer, SolveRequest, TuneRequest, TuneResponse};
 use serde::de::DeserializeOwned;
 use tokio::sync::Semaphore;
 
 use super::problem::ApiError;
-use crate::model::validate::{pointer_token, validate, Issue};
+use crate::model::validate::{pointer_token, Issue};
 use crate::solve::budget::Budget;
-use crate::solve::{solve as solve_chain, Plan};
+use crate::sweep::answer;
+use crate::tune::tune as tune_parameter;
 
 /// What the handlers share.
 pub struct AppState {
@@ -121,22 +121,35 @@ fn strip_position(message: &str) -> String {
     }
 }
 
-fn solve_blocking(body: &[u8], budget: Duration) -> Result<SolveResponse, ApiError> {
+fn solve_blocking(body: &[u8], budget: Duration) -> Result<SolveAnswer, ApiError> {
     let budget = Budget::new(budget);
     let request: SolveRequest = parse_json(body)?;
-    if request.report.is_empty() {
-        return Err(ApiError::Invalid(vec![Issue {
-            pointer: "/report".into(),
-            detail: "list at least one of \"absorption\", \"steps\", \"visits\"".into(),
-        }]));
-    }
-    let chain = validate(&request.chain, &request.parameters).map_err(ApiError::Invalid)?;
-    let plan = Plan {
-        arithmetic: request.arithmetic,
-        report: request.report.into_iter().collect::<BTreeSet<_>>(),
-        by_state: request.by_state,
-    };
-    Ok(solve_chain(&chain, &plan, &budget)?)
+    Ok(answer(&request, &budget)?)
+}
+
+fn tune_blocking(body: &[u8], budget: Duration) -> Result<TuneResponse, ApiError> {
+    let budget = Budget::new(budget);
+    let request: TuneRequest = parse_json(body)?;
+    Ok(tune_parameter(&request, &budget)?)
+}
+
+/// Runs CPU-heavy work on the blocking pool under one of the computation permits.
+async fn compute<T: Send + 'static>(
+    state: &AppState,
+    work: impl FnOnce(Duration) -> Result<T, ApiError> + Send + 'static,
+) -> Result<T, ApiError> {
+    let permit = state
+        .permits
+        .clone()
+        .try_acquire_owned()
+        .map_err(|_| ApiError::Saturated)?;
+    let budget = state.solve_budget;
+    web::block(move || {
+        let _permit = permit;
+        work(budget)
+    })
+    .await
+    .map_err(|e| ApiError::Internal(format!("computation panicked: {e}")))?
 }
 
 /// Solve an absorbing Markov chain.
@@ -166,7 +179,7 @@ fn solve_blocking(body: &[u8], budget: Duration) -> Result<SolveResponse, ApiErr
         })
     ),
     responses(
-        (status = 200, description = "The answer", body = SolveResponse),
+        (status = 200, description = "The answer (a `SweepResponse` when `sweep` is given)", body = SolveAnswer),
         (status = 400, description = "Malformed JSON", body = Problem, content_type = "application/problem+json"),
         (status = 413, description = "Body too large", body = Problem, content_type = "application/problem+json"),
         (status = 415, description = "Body not sent as JSON", body = Problem, content_type = "application/problem+json"),
@@ -179,21 +192,60 @@ pub async fn solve(
     request: HttpRequest,
     payload: web::Payload,
     state: web::Data<AppState>,
-) -> Result<web::Json<SolveResponse>, ApiError> {
+) -> Result<web::Json<SolveAnswer>, ApiError> {
     let body = read_body(&request, payload, state.max_body_bytes).await?;
-    let permit = state
-        .permits
-        .clone()
-        .try_acquire_owned()
-        .map_err(|_| ApiError::Saturated)?;
-    let budget = state.solve_budget;
-    let answer = web::block(move || {
-        let _permit = permit;
-        solve_blocking(&body, budget)
-    })
-    .await
-    .map_err(|e| ApiError::Internal(format!("computation panicked: {e}")))??;
-    Ok(web::Json(answer))
+    Ok(web::Json(
+        compute(&state, move |budget| solve_blocking(&body, budget)).await?,
+    ))
+}
+
+/// Find the parameter value at which a metric reaches a target.
+///
+/// Samples the range, then narrows a bracket around the value with safeguarded Newton steps
+/// using the exact derivative. `value.exact` is present only when an exact rational root was
+/// verified. A target the metric does not reach in the range is a 422 giving the metric at both
+/// ends; a metric that is not monotone in the range is named in `warnings`.
+#[utoipa::path(
+    post,
+    path = "/v1/tune",
+    tag = "solve",
+    request_body(
+        content = TuneRequest,
+        content_type = "application/json",
+        example = json!({
+            "chain": {
+                "parameters": {"drop": "1/40"},
+                "transitions": [
+                    {"from": "chest", "to": "sword", "probability": "drop"},
+                    {"from": "chest", "to": "mimic", "probability": "1/200"},
+                    {"from": "chest", "to": "chest", "probability": "1 - drop - 1/200"}
+                ],
+                "start": "chest"
+            },
+            "parameter": "drop",
+            "range": ["0.001", "0.2"],
+            "target": {"metric": "absorption", "outcome": "sword", "equals": "0.9"}
+        })
+    ),
+    responses(
+        (status = 200, description = "The value found", body = TuneResponse),
+        (status = 400, description = "Malformed JSON", body = Problem, content_type = "application/problem+json"),
+        (status = 413, description = "Body too large", body = Problem, content_type = "application/problem+json"),
+        (status = 415, description = "Body not sent as JSON", body = Problem, content_type = "application/problem+json"),
+        (status = 422, description = "Invalid request, target not reached in the range, or budget exceeded", body = Problem, content_type = "application/problem+json"),
+        (status = 503, description = "Every computation slot is busy; see Retry-After", body = Problem, content_type = "application/problem+json"),
+    )
+)]
+#[post("/v1/tune")]
+pub async fn tune(
+    request: HttpRequest,
+    payload: web::Payload,
+    state: web::Data<AppState>,
+) -> Result<web::Json<TuneResponse>, ApiError> {
+    let body = read_body(&request, payload, state.max_body_bytes).await?;
+    Ok(web::Json(
+        compute(&state, move |budget| tune_blocking(&body, budget)).await?,
+    ))
 }
 
 /// Liveness: answers while the process runs.
