@@ -131,6 +131,11 @@ pub enum Report {
     /// Derivatives and elasticities of every other reported metric with respect to each
     /// parameter.
     Sensitivity,
+    /// The distribution of the time to absorption: P(absorbed within n steps) for n up to
+    /// `horizon`, overall and per outcome, and the `quantiles` asked for.
+    Distribution,
+    /// Expected accumulated cost per cost dimension, its variance and its mean given each outcome.
+    Costs,
 }
 
 /// A state, declared by id alone or with details.
@@ -232,6 +237,14 @@ pub struct SolveRequest {
     /// Parameter values overriding the chain's defaults.
     #[serde(default, skip_serializing_if = "BTreeMap::is_empty")]
     pub parameters: BTreeMap<String, Value>,
+    /// Last step of the reported distribution (default: from the expected steps, mean + 6
+    /// standard deviations, at least 10).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub horizon: Option<u64>,
+    /// Probabilities q for which the smallest n with P(absorbed within n) >= q is reported, e.g.
+    /// `["0.5", "0.9", "0.99"]` (with `distribution`).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub quantiles: Vec<Value>,
     /// Solve once per parameter value (or grid point) instead; the answer is then a
     /// [`SweepResponse`].
     #[serde(default, skip_serializing_if = "Option::is_none")]
@@ -248,6 +261,8 @@ impl SolveRequest {
             report: default_report(),
             by_state: false,
             parameters: BTreeMap::new(),
+            horizon: None,
+            quantiles: Vec::new(),
             sweep: None,
         }
     }
@@ -310,9 +325,48 @@ pub struct Metrics {
     #[serde(default, skip_serializing_if = "Option::is_none")]
     #[cfg_attr(feature = "schema", schema(schema_with = nullable_number_map))]
     pub visits: Option<BTreeMap<String, Option<Number>>>,
+    /// The distribution of the time to absorption.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub distribution: Option<Distribution>,
+    /// Accumulated costs, per cost dimension.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub costs: Option<BTreeMap<String, CostReport>>,
     /// For each parameter, the derivatives of the other reported metrics.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub sensitivity: Option<BTreeMap<String, Sensitivity>>,
+}
+
+/// The distribution of the number of steps to absorption.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+pub struct Distribution {
+    /// The last step reported.
+    pub horizon: u64,
+    /// `cdf[n]` = P(absorbed within n steps), n = 0..=horizon.
+    pub cdf: Vec<Number>,
+    /// P(absorbed in each outcome within n steps), n = 0..=horizon.
+    pub by_outcome: BTreeMap<String, Vec<Number>>,
+    /// For each q asked, the smallest n with P(absorbed within n) >= q; `null` when never reached
+    /// (a warning says why).
+    pub quantiles: BTreeMap<String, Option<u64>>,
+    /// The same for each outcome, conditioned on ending there.
+    pub quantiles_by_outcome: BTreeMap<String, BTreeMap<String, Option<u64>>>,
+    /// Probability of not being absorbed within `horizon` steps.
+    pub remaining: Number,
+}
+
+/// Statistics of the cost accumulated up to absorption, in one dimension; `null` where the walk
+/// can be trapped (the cost then has no finite expectation in general).
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+pub struct CostReport {
+    /// Expected total cost.
+    pub mean: Option<Number>,
+    /// Variance of the total cost.
+    pub variance: Option<Number>,
+    /// Expected total cost given the walk ends in each absorbing state.
+    #[cfg_attr(feature = "schema", schema(schema_with = nullable_number_map))]
+    pub mean_given: BTreeMap<String, Option<Number>>,
 }
 
 /// The derivative of one metric with respect to one parameter.
@@ -460,6 +514,12 @@ pub enum Metric {
     StepsVariance,
     /// Expected visits to `state`.
     Visits,
+    /// P(absorbed within `steps` steps), in `outcome` when given.
+    Within,
+    /// The smallest n with P(absorbed within n) >= `q`.
+    StepsQuantile,
+    /// Expected total of cost dimension `cost`.
+    CostMean,
 }
 
 /// A metric of a chain, e.g. `{"metric": "absorption", "outcome": "sword"}`.
@@ -478,6 +538,15 @@ pub struct MetricSelector {
     /// The transient state, for `visits`.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub state: Option<String>,
+    /// The number of steps, for `within`.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub steps: Option<u64>,
+    /// The probability, for `steps_quantile`.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub q: Option<Value>,
+    /// The cost dimension, for `cost_mean`.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub cost: Option<String>,
     /// Start here instead of the chain's `start`.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub from: Option<String>,

@@ -3,10 +3,13 @@
 
 use std::collections::BTreeSet;
 
-use oddsmith_client::types::{Metric, MetricSelector, Number, Report, SolveResponse};
+use num_rational::BigRational;
+use num_traits::{One, Signed};
+use oddsmith_client::types::{Metric, MetricSelector, Number, Report, SolveResponse, Value};
 
 use crate::model::chain::Chain;
 use crate::model::validate::Issue;
+use crate::model::value::parse_exact;
 
 /// A selector checked against a chain.
 #[derive(Clone, Debug)]
@@ -41,6 +44,58 @@ impl Selector {
         match wire.metric {
             Metric::Absorption => need("outcome", &wire.outcome, true),
             Metric::Visits => need("state", &wire.state, false),
+            Metric::Within => {
+                if let Some(outcome) = &wire.outcome {
+                    check_state(chain, outcome, true, &format!("{at}/outcome"), &mut issues);
+                }
+                if wire.steps.is_none() {
+                    issues.push(Issue {
+                        pointer: at.to_owned(),
+                        detail: "`within` needs `steps`".into(),
+                    });
+                }
+            }
+            Metric::StepsQuantile => match wire.q.as_ref().map(|q| parse_exact(&q.text())) {
+                None => issues.push(Issue {
+                    pointer: at.to_owned(),
+                    detail: "`steps_quantile` needs `q`".into(),
+                }),
+                Some(Ok(q)) if q.is_positive() && q <= BigRational::one() => {}
+                Some(Ok(_)) => issues.push(Issue {
+                    pointer: format!("{at}/q"),
+                    detail: "`q` must lie in (0, 1]".into(),
+                }),
+                Some(Err(detail)) => issues.push(Issue {
+                    pointer: format!("{at}/q"),
+                    detail,
+                }),
+            },
+            Metric::CostMean => match &wire.cost {
+                None => issues.push(Issue {
+                    pointer: at.to_owned(),
+                    detail: "`cost_mean` needs `cost`".into(),
+                }),
+                Some(cost) if !chain.costs.iter().any(|d| d.name == *cost) => issues.push(Issue {
+                    pointer: format!("{at}/cost"),
+                    detail: format!(
+                        "the chain has no cost dimension '{cost}'{}",
+                        if chain.costs.is_empty() {
+                            String::new()
+                        } else {
+                            format!(
+                                "; it has {}",
+                                chain
+                                    .costs
+                                    .iter()
+                                    .map(|d| d.name.as_str())
+                                    .collect::<Vec<_>>()
+                                    .join(", ")
+                            )
+                        }
+                    ),
+                }),
+                Some(_) => {}
+            },
             _ => {}
         }
         if let Some(given) = &wire.given {
@@ -48,12 +103,23 @@ impl Selector {
                 check_state(chain, given, true, &format!("{at}/given"), &mut issues);
             }
         }
-        for (field, value, used) in [
-            ("outcome", &wire.outcome, wire.metric == Metric::Absorption),
-            ("state", &wire.state, wire.metric == Metric::Visits),
-            ("given", &wire.given, wire.metric == Metric::StepsMean),
+        for (field, present, used) in [
+            (
+                "outcome",
+                wire.outcome.is_some(),
+                matches!(wire.metric, Metric::Absorption | Metric::Within),
+            ),
+            ("state", wire.state.is_some(), wire.metric == Metric::Visits),
+            (
+                "given",
+                wire.given.is_some(),
+                wire.metric == Metric::StepsMean,
+            ),
+            ("steps", wire.steps.is_some(), wire.metric == Metric::Within),
+            ("q", wire.q.is_some(), wire.metric == Metric::StepsQuantile),
+            ("cost", wire.cost.is_some(), wire.metric == Metric::CostMean),
         ] {
-            if value.is_some() && !used {
+            if present && !used {
                 issues.push(Issue {
                     pointer: format!("{at}/{field}"),
                     detail: format!("`{}` does not take `{field}`", metric_name(wire.metric)),
@@ -88,7 +154,24 @@ impl Selector {
             Metric::Absorption | Metric::NeverAbsorbed => Report::Absorption,
             Metric::StepsMean | Metric::StepsVariance => Report::Steps,
             Metric::Visits => Report::Visits,
+            Metric::Within | Metric::StepsQuantile => Report::Distribution,
+            Metric::CostMean => Report::Costs,
         }])
+    }
+
+    /// The horizon a `within` selector needs.
+    #[must_use]
+    pub fn horizon(&self) -> Option<u64> {
+        (self.wire.metric == Metric::Within)
+            .then_some(self.wire.steps)
+            .flatten()
+    }
+
+    /// The quantile a `steps_quantile` selector needs, with its text.
+    #[must_use]
+    pub fn quantile(&self) -> Option<(String, BigRational)> {
+        let q = self.wire.q.as_ref()?;
+        Some((q.text(), parse_exact(&q.text()).ok()?))
     }
 
     /// A short description, e.g. `absorption in 'sword'`.
@@ -151,6 +234,36 @@ impl Selector {
                     .visits
                     .and_then(|m| m.get(&key(&self.wire.state)).cloned()),
             ),
+            Metric::Within => {
+                let steps = self.wire.steps.unwrap_or_default() as usize;
+                let distribution = metrics.distribution.as_ref();
+                let value = match &self.wire.outcome {
+                    None => distribution.and_then(|d| d.cdf.get(steps).cloned()),
+                    Some(outcome) => {
+                        distribution.and_then(|d| d.by_outcome.get(outcome)?.get(steps).cloned())
+                    }
+                };
+                (value, None)
+            }
+            Metric::StepsQuantile => {
+                let q = self.wire.q.as_ref().map(Value::text).unwrap_or_default();
+                let step = metrics
+                    .distribution
+                    .as_ref()
+                    .and_then(|d| d.quantiles.get(&q).copied().flatten());
+                let value = step.map(|n| Number {
+                    value: n as f64,
+                    exact: Some(n.to_string()),
+                });
+                (value, None)
+            }
+            Metric::CostMean => (
+                metrics
+                    .costs
+                    .as_ref()
+                    .and_then(|c| c.get(&key(&self.wire.cost))?.mean.clone()),
+                None,
+            ),
         };
         Reading {
             value,
@@ -190,5 +303,8 @@ fn metric_name(metric: Metric) -> &'static str {
         Metric::StepsMean => "steps_mean",
         Metric::StepsVariance => "steps_variance",
         Metric::Visits => "visits",
+        Metric::Within => "within",
+        Metric::StepsQuantile => "steps_quantile",
+        Metric::CostMean => "cost_mean",
     }
 }

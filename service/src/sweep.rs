@@ -5,9 +5,10 @@ use std::collections::BTreeSet;
 
 use num_bigint::BigInt;
 use num_rational::BigRational;
+use num_traits::{One, Signed};
 use oddsmith_client::types::{
-    Number, SolveAnswer, SolveRequest, Sweep, SweepAxis, SweepPoint, SweepResponse, UsedArithmetic,
-    Value,
+    Number, Report, SolveAnswer, SolveRequest, Sweep, SweepAxis, SweepPoint, SweepResponse,
+    UsedArithmetic, Value,
 };
 use rayon::prelude::*;
 
@@ -15,7 +16,7 @@ use crate::model::chain::Chain;
 use crate::model::validate::{validate, Issue};
 use crate::model::value::{exact_text, parse_exact, to_f64};
 use crate::solve::budget::Budget;
-use crate::solve::{solve, Plan, SolveError};
+use crate::solve::{solve, Plan, SolveError, MAX_HORIZON};
 
 /// Most points one sweep may have.
 pub const MAX_SWEEP_POINTS: usize = 10_000;
@@ -58,11 +59,7 @@ pub fn answer(request: &SolveRequest, budget: &Budget) -> Result<SolveAnswer, Re
             "list at least one of \"absorption\", \"steps\", \"visits\", \"sensitivity\"",
         ));
     }
-    let plan = Plan {
-        arithmetic: request.arithmetic,
-        report: request.report.iter().copied().collect::<BTreeSet<_>>(),
-        by_state: request.by_state,
-    };
+    let plan = plan(request)?;
     let chain = validate(&request.chain, &request.parameters)?;
     let Some(sweep) = &request.sweep else {
         return Ok(SolveAnswer::Single(Box::new(solve(&chain, &plan, budget)?)));
@@ -93,6 +90,58 @@ pub fn answer(request: &SolveRequest, budget: &Budget) -> Result<SolveAnswer, Re
         })
         .collect::<Result<_, RequestError>>()?;
     Ok(SolveAnswer::Sweep(SweepResponse { sweep: points }))
+}
+
+/// What to compute for a request: its report, and its distribution settings checked.
+fn plan(request: &SolveRequest) -> Result<Plan, RequestError> {
+    let mut plan = Plan::new(
+        request.arithmetic,
+        request.report.iter().copied().collect::<BTreeSet<_>>(),
+        request.by_state,
+    );
+    let mut issues = Vec::new();
+    if let Some(horizon) = request.horizon {
+        if horizon > MAX_HORIZON {
+            issues.push(Issue {
+                pointer: "/horizon".into(),
+                detail: format!("the horizon may be at most {MAX_HORIZON}"),
+            });
+        }
+        plan.horizon = Some(horizon);
+    }
+    for (i, q) in request.quantiles.iter().enumerate() {
+        let text = q.text();
+        match parse_exact(&text) {
+            Ok(level) if level.is_positive() && level <= BigRational::one() => {
+                plan.quantiles.push((text, level));
+            }
+            Ok(_) => issues.push(Issue {
+                pointer: format!("/quantiles/{i}"),
+                detail: format!("a quantile level must lie in (0, 1]; got {text}"),
+            }),
+            Err(detail) => issues.push(Issue {
+                pointer: format!("/quantiles/{i}"),
+                detail,
+            }),
+        }
+    }
+    let distribution = request.report.contains(&Report::Distribution);
+    for (field, given) in [
+        ("horizon", request.horizon.is_some()),
+        ("quantiles", !request.quantiles.is_empty()),
+    ] {
+        if given && !distribution {
+            issues.push(Issue {
+                pointer: format!("/{field}"),
+                detail: format!("`{field}` needs \"distribution\" in `report`"),
+            });
+        }
+    }
+    if issues.is_empty() {
+        Ok(plan)
+    } else {
+        Err(RequestError::Invalid(issues))
+    }
 }
 
 /// The grid's points in order (the last axis varies fastest), each as parameter values.

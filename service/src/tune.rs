@@ -66,11 +66,9 @@ impl Problem<'_> {
         }
         let mut report = self.selector.reports();
         report.insert(Report::Sensitivity);
-        let plan = Plan {
-            arithmetic: self.request.arithmetic,
-            report,
-            by_state: false,
-        };
+        let mut plan = Plan::new(self.request.arithmetic, report, false);
+        plan.horizon = self.selector.horizon();
+        plan.quantiles.extend(self.selector.quantile());
         let answer = solve(&chain, &plan, self.budget)?;
         let reading = self.selector.read(&answer, Some(&self.request.parameter));
         let Some(metric) = reading.value else {

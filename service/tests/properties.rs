@@ -65,11 +65,11 @@ fn spec(n: usize, rows: &[Vec<(usize, u32)>], start: &[u32]) -> Option<ChainSpec
 
 fn run(spec: &ChainSpec, arithmetic: Arithmetic) -> SolveResponse {
     let chain = validate(spec, &Default::default()).expect("generated chains are valid");
-    let plan = Plan {
+    let plan = Plan::new(
         arithmetic,
-        report: BTreeSet::from([Report::Absorption, Report::Steps, Report::Visits]),
-        by_state: true,
-    };
+        BTreeSet::from([Report::Absorption, Report::Steps, Report::Visits]),
+        true,
+    );
     solve(&chain, &plan, &Budget::new(Duration::from_secs(30))).expect("small chains solve")
 }
 

@@ -57,18 +57,42 @@ async fn the_document_is_openapi_3_1_with_the_contract_field_names() {
     expect("Derivative", &["derivative", "elasticity"]);
     expect(
         "Sensitivity",
-        &["absorption", "never_absorbed", "steps_mean", "steps_variance", "steps_mean_given", "visits"],
+        &[
+            "absorption",
+            "never_absorbed",
+            "steps_mean",
+            "steps_variance",
+            "steps_mean_given",
+            "visits",
+        ],
     );
     expect("SweepAxis", &["parameter", "values", "from", "to", "count"]);
     expect("SweepResponse", &["sweep"]);
-    expect("MetricSelector", &["metric", "outcome", "given", "state", "from"]);
+    expect(
+        "MetricSelector",
+        &["metric", "outcome", "given", "state", "from"],
+    );
     expect(
         "TuneRequest",
-        &["chain", "parameter", "range", "target", "arithmetic", "parameters"],
+        &[
+            "chain",
+            "parameter",
+            "range",
+            "target",
+            "arithmetic",
+            "parameters",
+        ],
     );
     expect(
         "TuneResponse",
-        &["parameter", "value", "bracket", "achieved", "evaluations", "warnings"],
+        &[
+            "parameter",
+            "value",
+            "bracket",
+            "achieved",
+            "evaluations",
+            "warnings",
+        ],
     );
     expect(
         "TransitionSpec",
@@ -113,9 +137,13 @@ async fn the_document_is_openapi_3_1_with_the_contract_field_names() {
 async fn the_documented_tuning_example_finds_its_root() {
     let app = spawn_app().await;
     let (_, _, document) = app.call(reqwest::Method::GET, "/openapi.json").await;
-    let example =
-        &document["paths"]["/v1/tune"]["post"]["requestBody"]["content"]["application/json"]["example"];
-    let tuned = app.client.tune(&serde_json::from_value(example.clone()).unwrap()).await.unwrap();
+    let example = &document["paths"]["/v1/tune"]["post"]["requestBody"]["content"]
+        ["application/json"]["example"];
+    let tuned = app
+        .client
+        .tune(&serde_json::from_value(example.clone()).unwrap())
+        .await
+        .unwrap();
     // drop / (drop + 1/200) = 9/10 at drop = 9/200.
     assert_eq!(tuned.value.exact.as_deref(), Some("9/200"));
 }

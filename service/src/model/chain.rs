@@ -26,10 +26,23 @@ pub struct Chain {
     pub start: Vec<(usize, BigRational)>,
     /// For each start entry, the derivative of its probability with respect to each parameter.
     pub start_gradients: Vec<Vec<BigRational>>,
+    /// Named cost dimensions (sorted by name).
+    pub costs: Vec<CostDimension>,
     /// The parameters and the values in force, in the chain's order.
     pub parameters: Vec<(String, BigRational)>,
     /// Things worth telling the caller that are not errors.
     pub warnings: Vec<String>,
+}
+
+/// One named cost dimension, e.g. `gold` or `ms`.
+#[derive(Clone, Debug)]
+pub struct CostDimension {
+    /// The dimension's name.
+    pub name: String,
+    /// Cost paid on each visit to each state (on arrival, once, for an absorbing state).
+    pub on_states: Vec<BigRational>,
+    /// Cost paid each time each transition is taken, aligned with `targets`.
+    pub on_transitions: Vec<BigRational>,
 }
 
 impl Chain {

@@ -1,13 +1,13 @@
 //! From the wire's `ChainSpec` to a validated [`Chain`], collecting every problem with its JSON
 //! pointer rather than stopping at the first.
 
-use std::collections::{BTreeMap, HashMap};
+use std::collections::{BTreeMap, BTreeSet, HashMap};
 
 use num_rational::BigRational;
 use num_traits::{One, Signed, Zero};
 use oddsmith_client::types::{ChainSpec, Cost, StartSpec, StateSpec, Value};
 
-use super::chain::Chain;
+use super::chain::{Chain, CostDimension};
 use super::expr::{parse, Dual};
 use super::value::{exact_text, parse_exact};
 
@@ -104,14 +104,19 @@ impl Issues {
         Some(p)
     }
 
-    fn costs(&mut self, cost: Option<&Cost>, pointer: &str) {
+    /// Evaluates a cost map, recording issues; only valid amounts are returned.
+    fn costs(&mut self, cost: Option<&Cost>, pointer: &str) -> BTreeMap<String, BigRational> {
+        let mut amounts = BTreeMap::new();
         for (dimension, amount) in cost.into_iter().flatten() {
             let at = format!("{pointer}/cost/{}", pointer_token(dimension));
             if dimension.trim().is_empty() {
                 self.add(at.clone(), "a cost dimension needs a non-empty name");
             }
-            self.value(amount, at);
+            if let Some(value) = self.value(amount, at) {
+                amounts.insert(dimension.clone(), value.value);
+            }
         }
+        amounts
     }
 
     /// Reads the chain's parameters and the request's overrides.
@@ -189,6 +194,9 @@ struct Row {
     broken: bool,
     /// Target -> (summed value, indices of the transitions that gave it).
     targets: BTreeMap<usize, (Dual, Vec<usize>)>,
+    /// Target -> cost dimension -> Σ value × cost over the transitions to that target (repeated
+    /// pairs with different costs average them, weighted by their probabilities).
+    weighted_costs: BTreeMap<usize, BTreeMap<String, BigRational>>,
 }
 
 /// Validates a chain description at its parameters' values, with `overrides` (the request's
@@ -213,6 +221,7 @@ pub fn validate(
     };
 
     // Declared states, in order.
+    let mut state_costs: Vec<(usize, String, BigRational)> = Vec::new();
     let mut declared_absorbing: HashMap<usize, usize> = HashMap::new();
     let mut declared_at: HashMap<usize, usize> = HashMap::new();
     for (k, state) in spec.states.iter().enumerate() {
@@ -235,7 +244,10 @@ pub fn validate(
         if absorbing == Some(true) {
             declared_absorbing.insert(i, k);
         }
-        issues.costs(cost, &at);
+        let amounts = issues.costs(cost, &at);
+        for (dimension, amount) in amounts {
+            state_costs.push((i, dimension, amount));
+        }
     }
 
     // Transitions, grouped by source state.
@@ -247,7 +259,7 @@ pub fn validate(
                 issues.add(format!("{at}/{field}"), "a state id must not be empty");
             }
         }
-        issues.costs(t.cost.as_ref(), &at);
+        let transition_cost = issues.costs(t.cost.as_ref(), &at);
         if t.from.is_empty() || t.to.is_empty() {
             continue;
         }
@@ -311,6 +323,10 @@ pub fn validate(
             });
             entry.0.add_assign(&value);
             entry.1.push(k);
+            let costs = row.weighted_costs.entry(to).or_default();
+            for (dimension, amount) in transition_cost {
+                *costs.entry(dimension).or_insert_with(BigRational::zero) += &value.value * amount;
+            }
         }
     }
 
@@ -329,6 +345,7 @@ pub fn validate(
     let mut targets = Vec::new();
     let mut probabilities = Vec::new();
     let mut gradients = Vec::new();
+    let mut weighted_costs: Vec<BTreeMap<String, BigRational>> = Vec::new();
     for (state, id) in ids.iter().enumerate() {
         row_start.push(targets.len());
         let Some(row) = rows.remove(&state) else {
@@ -417,9 +434,17 @@ pub fn validate(
                 ),
             );
         }
+        let mut row_costs = row.weighted_costs;
         for (target, (value, _)) in row.targets {
             if !value.value.is_zero() {
                 let probability = value.ratio(&total);
+                let costs = row_costs.remove(&target).unwrap_or_default();
+                weighted_costs.push(
+                    costs
+                        .into_iter()
+                        .map(|(dimension, sum)| (dimension, sum / &value.value))
+                        .collect(),
+                );
                 targets.push(target);
                 probabilities.push(probability.value);
                 gradients.push(probability.gradient);
@@ -433,8 +458,36 @@ pub fn validate(
         .map(|(state, p)| ((state, p.value), p.gradient))
         .unzip();
 
+    // Costs by dimension, dense over states and transitions.
+    let dimensions: BTreeSet<String> = state_costs
+        .iter()
+        .map(|(_, d, _)| d.clone())
+        .chain(weighted_costs.iter().flat_map(|c| c.keys().cloned()))
+        .collect();
+    let costs = dimensions
+        .into_iter()
+        .map(|dimension| {
+            let mut on_states = vec![BigRational::zero(); n];
+            for (state, d, amount) in &state_costs {
+                if *d == dimension {
+                    on_states[*state] = amount.clone();
+                }
+            }
+            let on_transitions = weighted_costs
+                .iter()
+                .map(|c| c.get(&dimension).cloned().unwrap_or_else(BigRational::zero))
+                .collect();
+            CostDimension {
+                name: dimension,
+                on_states,
+                on_transitions,
+            }
+        })
+        .collect();
+
     if issues.found.is_empty() {
         Ok(Chain {
+            costs,
             ids,
             absorbing,
             row_start,

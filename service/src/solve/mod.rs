@@ -11,6 +11,7 @@
 //! Each is one sparse solve with a right-hand side; the inverse is never formed.
 
 pub mod budget;
+pub mod distribution;
 pub mod elimination;
 pub mod scalar;
 pub mod sensitivity;
@@ -20,8 +21,8 @@ use std::time::Duration;
 
 use num_rational::BigRational;
 use oddsmith_client::types::{
-    Arithmetic, Derivative, Metrics, Report, Sensitivity, SolveResponse, SolverInfo, Steps,
-    UsedArithmetic,
+    Arithmetic, CostReport, Derivative, Distribution, Metrics, Number, Report, Sensitivity,
+    SolveResponse, SolverInfo, Steps, UsedArithmetic,
 };
 
 use crate::model::chain::Chain;
@@ -34,6 +35,12 @@ use sensitivity::{differentiate, elasticity, Perturbation};
 /// Cost model of exact solving used by `auto`: seconds per (factor entry x transient state),
 /// fitted on the 2-core reference machine in a release build (see DEVELOPERS.md, "Exact or float").
 pub const EXACT_SECONDS_PER_ENTRY_STATE: f64 = 3e-6;
+
+/// Largest horizon a request may ask for.
+pub const MAX_HORIZON: u64 = 1_000_000;
+
+/// Largest horizon chosen by default.
+pub const DEFAULT_HORIZON_CAP: u64 = 100_000;
 
 /// Share of the budget that `auto` grants exact arithmetic before falling back to float.
 pub const AUTO_EXACT_BUDGET_SHARE: f64 = 0.25;
@@ -73,6 +80,24 @@ pub struct Plan {
     pub report: BTreeSet<Report>,
     /// Also report from every transient state.
     pub by_state: bool,
+    /// Last step of the distribution (`None`: chosen from the expected steps).
+    pub horizon: Option<u64>,
+    /// Quantile levels asked for, with the text they were written in (the answer's keys).
+    pub quantiles: Vec<(String, BigRational)>,
+}
+
+impl Plan {
+    /// A plan with no distribution settings.
+    #[must_use]
+    pub fn new(arithmetic: Arithmetic, report: BTreeSet<Report>, by_state: bool) -> Self {
+        Plan {
+            arithmetic,
+            report,
+            by_state,
+            horizon: None,
+            quantiles: Vec::new(),
+        }
+    }
 }
 
 /// Solves the chain as planned, within the budget.
@@ -131,6 +156,10 @@ fn check_size(chain: &Chain, structure: &Structure, plan: &Plan) -> Result<(), S
             Report::Absorption => structure.absorbing.len() + 1,
             Report::Steps => structure.absorbing.len() + 2,
             Report::Visits => chain.len() - structure.absorbing.len(),
+            Report::Distribution => {
+                (plan.horizon.unwrap_or(1_000) as usize + 1) * (structure.absorbing.len() + 1)
+            }
+            Report::Costs => chain.costs.len() * (structure.absorbing.len() + 2),
             // Sensitivities repeat the other metrics once per parameter (counted below).
             Report::Sensitivity => 0,
         })
@@ -193,6 +222,18 @@ struct Vectors<S> {
     second_moment: Vec<S>,
     /// `E[T; ends in a]` for each absorbing outcome.
     steps_and_outcome: Vec<Vec<S>>,
+    /// Accumulated costs, one per cost dimension (when costs are reported).
+    costs: Vec<CostVectors<S>>,
+}
+
+/// Expected accumulated cost in one dimension, from each transient position.
+struct CostVectors<S> {
+    /// `E[C]`.
+    mean: Vec<S>,
+    /// `E[C²]`.
+    second_moment: Vec<S>,
+    /// `E[C; ends in a]` for each absorbing outcome.
+    joint: Vec<Vec<S>>,
 }
 
 /// Expected visits from one start, and their derivatives with respect to each parameter.
@@ -233,7 +274,9 @@ fn run<S: Scalar>(
         Ok(x)
     };
     let outcome: Vec<Vec<S>> = rhs.into_iter().map(&mut solve).collect::<Result<_, _>>()?;
-    let at = if plan.report.contains(&Report::Steps) {
+    let wants_steps =
+        plan.report.contains(&Report::Steps) || plan.report.contains(&Report::Distribution);
+    let mut at = if wants_steps {
         let steps = solve(vec![S::one(); n])?;
         let steps_twice = solve(steps.clone())?;
         let steps_and_outcome = outcome[..absorbing_count]
@@ -246,6 +289,7 @@ fn run<S: Scalar>(
             steps,
             steps_twice,
             steps_and_outcome,
+            costs: Vec::new(),
         }
     } else {
         Vectors {
@@ -254,8 +298,15 @@ fn run<S: Scalar>(
             steps_twice: Vec::new(),
             second_moment: Vec::new(),
             steps_and_outcome: Vec::new(),
+            costs: Vec::new(),
         }
     };
+    if plan.report.contains(&Report::Costs) {
+        for dimension in &chain.costs {
+            let costs = cost_vectors(chain, structure, dimension, &at.outcome, &mut solve)?;
+            at.costs.push(costs);
+        }
+    }
 
     let sensitivities = plan.report.contains(&Report::Sensitivity);
     let parameters = if sensitivities {
@@ -283,6 +334,7 @@ fn run<S: Scalar>(
                 steps_twice: Vec::new(),
                 second_moment: Vec::new(),
                 steps_and_outcome: Vec::new(),
+                costs: Vec::new(),
             }
         } else {
             let steps = d(&at.steps, None)?;
@@ -299,6 +351,7 @@ fn run<S: Scalar>(
                 steps,
                 steps_twice,
                 steps_and_outcome,
+                costs: Vec::new(),
             }
         };
         derivatives.push(vectors);
@@ -353,8 +406,19 @@ fn run<S: Scalar>(
         .iter()
         .map(|g| g.iter().map(S::from_rational).collect())
         .collect();
+    let mut warnings = chain.warnings.clone();
+    let distribution_for =
+        |start: &[(usize, S)], metrics: &mut Metrics, warnings: &mut Vec<String>| {
+            if plan.report.contains(&Report::Distribution) {
+                let (distribution, notes) = solution.distribution(start, plan, budget)?;
+                metrics.distribution = Some(distribution);
+                warnings.extend(notes);
+            }
+            Ok::<(), SolveError>(())
+        };
     let visits = visits_from(&start, &start_gradients)?;
-    let metrics = solution.metrics(&start, &start_gradients, visits.as_ref(), plan);
+    let mut metrics = solution.metrics(&start, &start_gradients, visits.as_ref(), plan);
+    distribution_for(&start, &mut metrics, &mut warnings)?;
     let by_state = if plan.by_state {
         let mut table = BTreeMap::new();
         let still = vec![vec![S::zero(); parameters]];
@@ -362,17 +426,16 @@ fn run<S: Scalar>(
             budget.check()?;
             let start = [(state, S::one())];
             let visits = visits_from(&start, &still)?;
-            table.insert(
-                chain.ids[state].clone(),
-                solution.metrics(&start, &still, visits.as_ref(), plan),
-            );
+            let mut metrics = solution.metrics(&start, &still, visits.as_ref(), plan);
+            let mut notes = Vec::new();
+            distribution_for(&start, &mut metrics, &mut notes)?;
+            table.insert(chain.ids[state].clone(), metrics);
         }
         Some(table)
     } else {
         None
     };
 
-    let mut warnings = chain.warnings.clone();
     if plan.report.contains(&Report::Sensitivity) && chain.parameters.is_empty() {
         warnings
             .push("`sensitivity` was asked for, but the chain declares no `parameters`".to_owned());
@@ -472,6 +535,88 @@ fn linear_system<S: Scalar>(
         matrix: rows,
         outcomes: rhs,
     })
+}
+
+/// Expected accumulated cost by first-step analysis. With `a_ij` the cost of one step from `i`
+/// to `j` (the state cost of `i`, the transition's cost, and the state cost of `j` when `j` is
+/// absorbing, paid on arrival): `(I - Q) m = Σ_j P_ij a_ij`,
+/// `(I - Q) M2 = Σ_j P_ij (a_ij² + 2 a_ij m_j)` and `(I - Q) y_a = Σ_j P_ij a_ij h_a(j)`, where
+/// `h_a(j)` is the probability of ending in `a` from `j`.
+fn cost_vectors<S: Scalar>(
+    chain: &Chain,
+    structure: &Structure,
+    dimension: &crate::model::chain::CostDimension,
+    outcome: &[Vec<S>],
+    solve: &mut impl FnMut(Vec<S>) -> Result<Vec<S>, SolveError>,
+) -> Result<CostVectors<S>, SolveError> {
+    let n = structure.transient.len();
+    let absorbing_count = structure.absorbing.len();
+    // (probability, step cost, target) for every transition out of every transient state.
+    let steps: Vec<Vec<(S, S, usize)>> = structure
+        .transient
+        .iter()
+        .map(|&i| {
+            let state_cost = S::from_rational(&dimension.on_states[i]);
+            (chain.row_start[i]..chain.row_start[i + 1])
+                .map(|t| {
+                    let j = chain.targets[t];
+                    let mut cost = state_cost.add(&S::from_rational(&dimension.on_transitions[t]));
+                    if structure.kind[j] == StateKind::Absorbing {
+                        cost = cost.add(&S::from_rational(&dimension.on_states[j]));
+                    }
+                    (S::from_rational(&chain.probabilities[t]), cost, j)
+                })
+                .collect()
+        })
+        .collect();
+    let expected = |weight: &dyn Fn(&S, usize) -> S| -> Vec<S> {
+        steps
+            .iter()
+            .map(|row| {
+                row.iter()
+                    .fold(S::zero(), |sum, (p, a, j)| sum.add(&p.mul(&weight(a, *j))))
+            })
+            .collect()
+    };
+    let at_position = |values: &[S], j: usize| match structure.position[j] {
+        Some(q) => values[q].clone(),
+        None => S::zero(),
+    };
+    let mean = solve(expected(&|a, _| a.clone()))?;
+    let second_moment = solve(expected(&|a, j| {
+        a.mul(a).add(&a.add(a).mul(&at_position(&mean, j)))
+    }))?;
+    let joint = (0..absorbing_count)
+        .map(|k| {
+            let goal = structure.absorbing[k];
+            solve(expected(&|a, j| {
+                let h = if j == goal {
+                    S::one()
+                } else {
+                    at_position(&outcome[k], j)
+                };
+                a.mul(&h)
+            }))
+        })
+        .collect::<Result<_, _>>()?;
+    debug_assert_eq!(mean.len(), n);
+    Ok(CostVectors {
+        mean,
+        second_moment,
+        joint,
+    })
+}
+
+/// Default horizon of a distribution: the mean plus six standard deviations of the steps (at
+/// least 10), or 100 when the expected steps are infinite.
+fn default_horizon(moments: Option<(f64, f64)>) -> u64 {
+    match moments {
+        Some((mean, variance)) => {
+            let horizon = mean + 6.0 * variance.max(0.0).sqrt();
+            (horizon.ceil() as u64).clamp(10, DEFAULT_HORIZON_CAP)
+        }
+        None => 100,
+    }
 }
 
 /// `2 N t - t` from `N t` and `t`.
@@ -688,6 +833,57 @@ impl<S: Scalar> Solution<'_, S> {
                     .collect(),
             );
         }
+        if plan.report.contains(&Report::Costs) {
+            let mut costs = BTreeMap::new();
+            for (dimension, vectors) in self.chain.costs.iter().zip(&self.at.costs) {
+                // A start in an absorbing state pays that state's cost once.
+                let on_arrival = |power: u32| {
+                    start.iter().fold(S::zero(), |sum, (state, mass)| {
+                        if self.structure.kind[*state] != StateKind::Absorbing {
+                            return sum;
+                        }
+                        let cost = S::from_rational(&dimension.on_states[*state]);
+                        let cost = if power == 2 { cost.mul(&cost) } else { cost };
+                        sum.add(&mass.mul(&cost))
+                    })
+                };
+                let mean = self.weighted(start, &vectors.mean).add(&on_arrival(1));
+                let second = self
+                    .weighted(start, &vectors.second_moment)
+                    .add(&on_arrival(2));
+                let variance = second.sub(&mean.mul(&mean));
+                let mean_given = self
+                    .structure
+                    .absorbing
+                    .iter()
+                    .enumerate()
+                    .map(|(k, &a)| {
+                        let given = (!absorbed[k].is_zero()).then(|| {
+                            let arrival = start.iter().filter(|(state, _)| *state == a).fold(
+                                S::zero(),
+                                |sum, (_, mass)| {
+                                    sum.add(&mass.mul(&S::from_rational(&dimension.on_states[a])))
+                                },
+                            );
+                            self.weighted(start, &vectors.joint[k])
+                                .add(&arrival)
+                                .div(&absorbed[k])
+                                .to_number()
+                        });
+                        (ids[a].clone(), given)
+                    })
+                    .collect();
+                costs.insert(
+                    dimension.name.clone(),
+                    CostReport {
+                        mean: finite.then(|| mean.to_number()),
+                        variance: finite.then(|| variance.to_number()),
+                        mean_given,
+                    },
+                );
+            }
+            metrics.costs = Some(costs);
+        }
         if !plan.report.contains(&Report::Sensitivity) {
             return metrics;
         }
@@ -778,6 +974,137 @@ impl<S: Scalar> Solution<'_, S> {
         }
         metrics.sensitivity = Some(sensitivity);
         metrics
+    }
+
+    /// The distribution of the time to absorption from a start, with notes on quantiles not
+    /// reached.
+    fn distribution(
+        &self,
+        start: &[(usize, S)],
+        plan: &Plan,
+        budget: &Budget,
+    ) -> Result<(Distribution, Vec<String>), SolveError> {
+        let ids = &self.chain.ids;
+        let absorbing_count = self.structure.absorbing.len();
+        let no_gradients = vec![Vec::new(); start.len()];
+        let absorbed: Vec<S> = (0..absorbing_count)
+            .map(|k| self.outcome_mass(start, &no_gradients, k, None))
+            .collect();
+        let eventually = absorbed.iter().fold(S::zero(), |sum, p| sum.add(p));
+        let trapped = (absorbing_count..absorbing_count + self.structure.trap_classes.len())
+            .any(|k| !self.outcome_mass(start, &no_gradients, k, None).is_zero());
+        let moments = (!trapped).then(|| {
+            let mean = self.weighted(start, &self.at.steps);
+            let second = self.weighted(start, &self.at.second_moment);
+            (mean.to_f64(), second.sub(&mean.mul(&mean)).to_f64())
+        });
+        let horizon = plan.horizon.unwrap_or_else(|| default_horizon(moments));
+        let mut notes = Vec::new();
+        let mut targets = Vec::new();
+        let mut slots = Vec::new();
+        for (text, q) in &plan.quantiles {
+            let q = S::from_rational(q);
+            if eventually.at_least(&q) {
+                slots.push((text, None));
+                targets.push(distribution::QuantileTarget {
+                    q: q.clone(),
+                    outcome: None,
+                    mass: S::one(),
+                });
+            } else {
+                notes.push(format!(
+                    "quantile {text} is never reached: the walk is absorbed with probability {} \
+                     only",
+                    eventually.to_f64()
+                ));
+            }
+            for (k, mass) in absorbed.iter().enumerate() {
+                if !mass.is_zero() {
+                    slots.push((text, Some(k)));
+                    targets.push(distribution::QuantileTarget {
+                        q: q.clone(),
+                        outcome: Some(k),
+                        mass: mass.clone(),
+                    });
+                }
+            }
+        }
+        // Stepping past the horizon for quantiles may use half of what is left of the budget.
+        let extra = budget.share(
+            0.5 + 0.5 * budget.elapsed().as_secs_f64() / budget.limit().as_secs_f64().max(1e-9),
+        );
+        let found = distribution::propagate(
+            self.chain,
+            self.structure,
+            start,
+            horizon,
+            &targets,
+            budget,
+            &extra,
+        )?;
+        let mut quantiles: BTreeMap<String, Option<u64>> = plan
+            .quantiles
+            .iter()
+            .map(|(t, _)| (t.clone(), None))
+            .collect();
+        let mut quantiles_by_outcome: BTreeMap<String, BTreeMap<String, Option<u64>>> = self
+            .structure
+            .absorbing
+            .iter()
+            .map(|&a| (ids[a].clone(), quantiles.clone()))
+            .collect();
+        for ((text, outcome), step) in slots.into_iter().zip(found.quantiles) {
+            match outcome {
+                None => {
+                    quantiles.insert(text.clone(), step);
+                    if step.is_none() {
+                        notes.push(format!(
+                            "quantile {text} was not reached within {} steps",
+                            found.steps_taken
+                        ));
+                    }
+                }
+                Some(k) => {
+                    let id = &ids[self.structure.absorbing[k]];
+                    quantiles_by_outcome
+                        .get_mut(id)
+                        .expect("every outcome")
+                        .insert(text.clone(), step);
+                }
+            }
+        }
+        let cdf: Vec<S> = (0..=horizon as usize)
+            .map(|n| {
+                found
+                    .by_outcome
+                    .iter()
+                    .fold(S::zero(), |sum, column| sum.add(&column[n]))
+            })
+            .collect();
+        let remaining = S::one().sub(cdf.last().expect("horizon + 1 entries"));
+        let numbers = |values: &[S]| {
+            values
+                .iter()
+                .map(Scalar::to_number)
+                .collect::<Vec<Number>>()
+        };
+        Ok((
+            Distribution {
+                horizon,
+                cdf: numbers(&cdf),
+                by_outcome: self
+                    .structure
+                    .absorbing
+                    .iter()
+                    .zip(&found.by_outcome)
+                    .map(|(&a, column)| (ids[a].clone(), numbers(column)))
+                    .collect(),
+                quantiles,
+                quantiles_by_outcome,
+                remaining: remaining.to_number(),
+            },
+            notes,
+        ))
     }
 
     /// Names the trap classes that a start (or, with `by_state`, any state) can fall into.

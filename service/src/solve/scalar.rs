@@ -29,6 +29,8 @@ pub trait Scalar: Clone + Send + std::fmt::Debug + 'static {
     fn div(&self, other: &Self) -> Self;
     /// The nearest double, for residuals and checks.
     fn to_f64(&self) -> f64;
+    /// `self >= other`.
+    fn at_least(&self, other: &Self) -> bool;
     /// The wire form: a double, plus the exact text for exact arithmetic.
     fn to_number(&self) -> Number;
 }
@@ -61,6 +63,9 @@ impl Scalar for BigRational {
     }
     fn to_f64(&self) -> f64 {
         to_f64(self)
+    }
+    fn at_least(&self, other: &Self) -> bool {
+        self >= other
     }
     fn to_number(&self) -> Number {
         Number {
@@ -98,6 +103,9 @@ impl Scalar for f64 {
     }
     fn to_f64(&self) -> f64 {
         *self
+    }
+    fn at_least(&self, other: &Self) -> bool {
+        self >= other
     }
     fn to_number(&self) -> Number {
         Number {
