@@ -7,3 +7,4 @@ mod helpers;
 mod openapi;
 mod parameters;
 mod published;
+mod time_and_cost;

@@ -47,6 +47,8 @@ async fn the_document_is_openapi_3_1_with_the_contract_field_names() {
             "report",
             "by_state",
             "parameters",
+            "horizon",
+            "quantiles",
             "sweep",
         ],
     );
@@ -70,8 +72,22 @@ async fn the_document_is_openapi_3_1_with_the_contract_field_names() {
     expect("SweepResponse", &["sweep"]);
     expect(
         "MetricSelector",
-        &["metric", "outcome", "given", "state", "from"],
+        &[
+            "metric", "outcome", "given", "state", "steps", "q", "cost", "from",
+        ],
     );
+    expect(
+        "Distribution",
+        &[
+            "horizon",
+            "cdf",
+            "by_outcome",
+            "quantiles",
+            "quantiles_by_outcome",
+            "remaining",
+        ],
+    );
+    expect("CostReport", &["mean", "variance", "mean_given"]);
     expect(
         "TuneRequest",
         &[
@@ -108,6 +124,8 @@ async fn the_document_is_openapi_3_1_with_the_contract_field_names() {
             "never_absorbed",
             "steps",
             "visits",
+            "distribution",
+            "costs",
             "sensitivity",
         ],
     );
