@@ -403,6 +403,36 @@ pub struct Sensitivity {
     /// Of the expected visits to each transient state.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub visits: Option<BTreeMap<String, Derivative>>,
+    /// Of the distribution of the time to absorption, step by step up to the horizon.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub distribution: Option<DistributionSensitivity>,
+    /// Of each cost dimension's statistics.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub costs: Option<BTreeMap<String, CostSensitivity>>,
+}
+
+/// Derivatives of a distribution's entries.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+pub struct DistributionSensitivity {
+    /// Of `cdf[n]`.
+    pub cdf: Vec<Derivative>,
+    /// Of `by_outcome[a][n]`.
+    pub by_outcome: BTreeMap<String, Vec<Derivative>>,
+    /// Of `remaining`.
+    pub remaining: Derivative,
+}
+
+/// Derivatives of one cost dimension's statistics.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+pub struct CostSensitivity {
+    /// Of the expected total cost.
+    pub mean: Derivative,
+    /// Of its variance.
+    pub variance: Derivative,
+    /// Of the expected total cost given each outcome.
+    pub mean_given: BTreeMap<String, Derivative>,
 }
 
 /// One axis of a sweep: a parameter and its values, listed or evenly spaced.

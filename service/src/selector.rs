@@ -237,13 +237,17 @@ impl Selector {
             Metric::Within => {
                 let steps = self.wire.steps.unwrap_or_default() as usize;
                 let distribution = metrics.distribution.as_ref();
-                let value = match &self.wire.outcome {
-                    None => distribution.and_then(|d| d.cdf.get(steps).cloned()),
-                    Some(outcome) => {
-                        distribution.and_then(|d| d.by_outcome.get(outcome)?.get(steps).cloned())
-                    }
-                };
-                (value, None)
+                let d_distribution = sensitivity.distribution.as_ref();
+                match &self.wire.outcome {
+                    None => (
+                        distribution.and_then(|d| d.cdf.get(steps).cloned()),
+                        d_distribution.and_then(|d| d.cdf.get(steps).cloned()),
+                    ),
+                    Some(outcome) => (
+                        distribution.and_then(|d| d.by_outcome.get(outcome)?.get(steps).cloned()),
+                        d_distribution.and_then(|d| d.by_outcome.get(outcome)?.get(steps).cloned()),
+                    ),
+                }
             }
             Metric::StepsQuantile => {
                 let q = self.wire.q.as_ref().map(Value::text).unwrap_or_default();

@@ -236,10 +236,159 @@ def _random_start(rng, ids, absorbing, trapped, transient):
 
 
 def request_text(chain: dict, arithmetic: str, report=("absorption", "steps", "visits"),
-                 by_state: bool = True) -> str:
-    """The exact JSON body sent to the service (and parsed by the reference)."""
+                 by_state: bool = True, parameters: dict | None = None) -> str:
+    """The exact JSON body sent to the service (and parsed by the reference).
+
+    ``parameters`` (request-level overrides of the chain's values) is sent only when given.
+    """
     body = {"chain": chain, "arithmetic": arithmetic, "report": list(report), "by_state": by_state}
+    if parameters:
+        body["parameters"] = parameters
     return json.dumps(body)
+
+
+# --------------------------------------------------------------------------
+# Parametric chains: values written as expressions over named parameters
+# --------------------------------------------------------------------------
+
+PARAMETER_POOL = ["p", "q", "drop", "fail", "hit_rate", "k2"]
+
+# Expressions that lie strictly inside (0, 1) whenever every parameter does, so a
+# row built from them stays valid for any value in (0, 1) (defaults, overrides,
+# and the finite-difference points beside them).
+CHANCE_FORMS = [
+    "{a}", "1 - {a}", "{a}*{b}", "{a}^2", "(1 + {a})/2", "{a}/2", "2*{a}/(1 + {a})",
+    "1/(1 + {a})", "{b}*(1 - {a})", "1 - {a}*{b}", "({a} + {b})/3", "{a}^-1/(1 + {a}^-1)",
+    "1/3 + {a}/3",
+]
+# Weights that stay positive whenever every parameter lies in (0, 1).
+WEIGHT_FORMS = [
+    "1 + 2*{a}", "3 - {a}", "{a}", "2*{b} + {a}", "1/2 + {a}^2", "{a}^-1", "(1 + {a})*(2 - {b})",
+]
+
+
+def _grouped(expr: str) -> str:
+    """``expr`` safe to use as an operand (a bare name or number needs no parentheses)."""
+    return expr if expr.replace("_", "").isalnum() else f"({expr})"
+
+
+def _chance(rng: random.Random, names: list[str]) -> str:
+    return rng.choice(CHANCE_FORMS).format(a=rng.choice(names), b=rng.choice(names))
+
+
+def _shares(rng: random.Random, rest: str, k: int) -> list[str]:
+    """k expressions summing identically to ``rest``."""
+    if k == 1:
+        return [rest]
+    if rng.random() < 0.4:
+        return [f"{_grouped(rest)}/{k}"] * k
+    out = []
+    for f in _probabilities(rng, k):
+        out.append(rng.choice([f"{_grouped(rest)}*{f}", f"{f.numerator}*{_grouped(rest)}/{f.denominator}"]))
+    return out
+
+
+def _parametric_row(rng: random.Random, src: str, targets: list[str], names: list[str]) -> list[dict]:
+    """Transitions out of ``src``: probabilities summing to 1 identically, or positive weights."""
+    k = len(targets)
+    style = rng.choice(["chance", "chance", "split", "weights", "weights", "constant"])
+    if k == 1:
+        style = rng.choice(["constant", "weights"])
+    if style == "split" and k < 3:
+        style = "chance"
+    if style == "chance":  # [e, shares of 1 - e]
+        e = _chance(rng, names)
+        values = [e] + _shares(rng, f"1 - {_grouped(e)}", k - 1)
+    elif style == "split":  # [a*b, a*(1 - b), shares of 1 - a]
+        a, b = rng.choice(names), rng.choice(names)
+        values = [f"{a}*{b}", f"{a}*(1 - {b})"] + _shares(rng, f"1 - {a}", k - 2)
+    elif style == "constant":
+        values = [render(rng, p) for p in _probabilities(rng, k)]
+    else:
+        weights = []
+        for _ in targets:
+            if rng.random() < 0.7:
+                weights.append(rng.choice(WEIGHT_FORMS).format(a=rng.choice(names), b=rng.choice(names)))
+            else:
+                weights.append(render(rng, Fraction(rng.randint(1, 9), rng.randint(1, 3))))
+        return [{"from": src, "to": t, "weight": w} for t, w in zip(targets, weights)]
+    return [{"from": src, "to": t, "probability": v} for t, v in zip(targets, values)]
+
+
+def random_parametric_chain(seed: int) -> dict:
+    """A random chain with one or two parameters (rational defaults in (0, 1)), 2-7 states.
+
+    Rows are valid for every parameter value in (0, 1) and no expression
+    vanishes there, so the structure of the chain does not depend on the values.
+    Some chains have a closed class that traps the walk; some starts are
+    distributions whose weights depend on a parameter.
+    """
+    rng = random.Random(seed)
+    names = rng.sample(PARAMETER_POOL, rng.choice([1, 2, 2]))
+    parameters = {}
+    for name in names:
+        d = rng.randint(2, 9)
+        parameters[name] = render(rng, Fraction(rng.randint(1, d - 1), d))
+
+    n = rng.randint(2, 7)
+    ids = _ids(rng, n)
+    rng.shuffle(ids)
+    n_abs = rng.randint(1, min(2, n - 1))
+    absorbing, rest = ids[:n_abs], ids[n_abs:]
+    trap: list[str] = []
+    if len(rest) >= 3 and rng.random() < 0.35:
+        trap, rest = rest[:2], rest[2:]
+    transient = rest
+
+    transitions: list[dict] = []
+    listed: list[object] = []
+    for a in absorbing:
+        kind = rng.choice(["bare", "bare", "self", "declared"])
+        if kind == "self":
+            transitions.append({"from": a, "to": a, "probability": rng.choice([1, "1"])})
+        elif kind == "declared":
+            listed.append({"id": a, "absorbing": True})
+    if trap:
+        x, y = trap
+        transitions += _parametric_row(rng, x, [y, x] if rng.random() < 0.5 else [y], names)
+        transitions += _parametric_row(rng, y, [x, y] if rng.random() < 0.5 else [x], names)
+    for s in transient:
+        pool = [t for t in ids if t != s]
+        targets = rng.sample(pool, rng.randint(1, min(3, len(pool))))
+        if rng.random() < 0.4:
+            targets.append(s)
+        rng.shuffle(targets)
+        row = _parametric_row(rng, s, targets, names)
+        if rng.random() < 0.15:  # a repeated (from, to) pair: the two halves are summed
+            k = rng.randrange(len(row))
+            kind = "probability" if "probability" in row[k] else "weight"
+            v = row[k][kind]
+            if isinstance(v, str) and not v.endswith("%"):
+                half = {**row[k], kind: f"{_grouped(v)}/2"}
+                row[k:k + 1] = [half, dict(half)]
+        transitions += row
+
+    appearing = {t["from"] for t in transitions} | {t["to"] for t in transitions}
+    listed += [s for s in ids if s not in appearing and s not in [e["id"] for e in listed]]
+    rng.shuffle(transitions)
+    chain: dict = {"parameters": parameters, "transitions": transitions}
+    if listed:
+        chain["states"] = listed
+
+    r = rng.random()
+    if r < 0.5:
+        pick = rng.random()
+        chain["start"] = (rng.choice(absorbing) if pick < 0.1 else
+                          rng.choice(trap) if pick < 0.2 and trap else rng.choice(transient))
+    else:
+        chosen = rng.sample(ids, min(len(ids), rng.randint(2, 3)))
+        if r < 0.8:  # the start itself depends on a parameter
+            e = _chance(rng, names)
+            values = [e] + _shares(rng, f"1 - {_grouped(e)}", len(chosen) - 1)
+        else:
+            values = [render(rng, p) for p in _probabilities(rng, len(chosen))]
+        chain["start"] = dict(zip(chosen, values))
+    return chain
 
 
 if __name__ == "__main__":  # print one chain, for reproducing a failure by hand

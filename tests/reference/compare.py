@@ -11,6 +11,13 @@ from sympy import Rational
 
 FLOAT_TOL = 1e-9
 METRICS = ("absorption", "never_absorbed", "steps", "visits")
+# Keys of one parameter's sensitivity, by the metric family that brings them.
+SENSITIVITY_KEYS = {
+    "absorption": ("absorption", "never_absorbed"),
+    "steps": ("steps_mean", "steps_variance", "steps_mean_given"),
+    "visits": ("visits",),
+}
+SENSITIVITY_MAPS = ("absorption", "steps_mean_given", "visits")
 
 
 def parse_exact(text: str) -> Rational:
@@ -112,6 +119,52 @@ class Comparer:
         if "visits" in report:
             self._present(prefix, got, "visits")
             self.number_map(f"{prefix}visits", got.get("visits"), want["visits"])
+
+    def sensitivity(self, path: str, got: dict, want: dict, report, scales=None) -> None:
+        """``got["sensitivity"]`` against ``want = {name: {(key, sub): (derivative, elasticity)}}``.
+
+        ``want`` is keyed as :func:`reference.metric_leaves` keys the metrics;
+        ``scales`` optionally maps ``name -> {(key, sub): size}``, a size that
+        widens the float tolerance of that derivative (as the variance's scale does above).
+        """
+        prefix = f"{path}/" if path else ""
+        sens = got.get("sensitivity") if isinstance(got, dict) else None
+        if not isinstance(sens, dict):
+            self.errors.append(f"{prefix}sensitivity: expected an object, got {sens!r}")
+            return
+        if set(sens) != set(want):
+            self.errors.append(f"{prefix}sensitivity: parameters {sorted(sens)} != {sorted(want)}")
+        keys = [k for family, ks in SENSITIVITY_KEYS.items() if family in report for k in ks]
+        for name, entries in want.items():
+            here = f"{prefix}sensitivity/{name}"
+            per = sens.get(name)
+            if not isinstance(per, dict):
+                self.errors.append(f"{here}: expected an object, got {per!r}")
+                continue
+            if set(per) != set(keys):
+                self.errors.append(f"{here}: keys {sorted(per)} != expected {sorted(keys)}")
+            for key in SENSITIVITY_MAPS:
+                if key in keys and isinstance(per.get(key), dict):
+                    subs = {sub for (k, sub) in entries if k == key}
+                    if set(per[key]) != subs:
+                        self.errors.append(
+                            f"{here}/{key}: keys {sorted(per[key])} != expected {sorted(subs)}"
+                        )
+            for (key, sub), (derivative, elasticity) in entries.items():
+                if key not in keys:
+                    continue
+                where = f"{here}/{key}" + (f"/{sub}" if sub is not None else "")
+                node = per.get(key)
+                if sub is not None:
+                    node = node.get(sub) if isinstance(node, dict) else None
+                if not isinstance(node, dict) or set(node) != {"derivative", "elasticity"}:
+                    self.errors.append(
+                        f"{where}: expected {{derivative, elasticity}} (nulls explicit), got {node!r}"
+                    )
+                    continue
+                scale = (scales or {}).get(name, {}).get((key, sub))
+                self.number(f"{where}/derivative", node["derivative"], derivative, scale)
+                self.number(f"{where}/elasticity", node["elasticity"], elasticity)
 
     def _present(self, prefix: str, got: dict, key: str) -> None:
         if key not in got:

@@ -55,13 +55,18 @@ class Service:
 
     def post_text(self, path: str, text: str):
         """POST a JSON body given as text; return (status, parsed JSON or raw text)."""
+        status, body, _ = self.post_text_typed(path, text)
+        return status, body
+
+    def post_text_typed(self, path: str, text: str):
+        """As :meth:`post_text`, also returning the response's Content-Type."""
         status, raw, ctype = self._request(
             "POST", path, text.encode("utf-8"), {"Content-Type": "application/json"}
         )
         try:
-            return status, json.loads(raw)
+            return status, json.loads(raw), ctype
         except ValueError:
-            return status, raw.decode("utf-8", "replace")
+            return status, raw.decode("utf-8", "replace"), ctype
 
     def solve(self, text: str) -> dict:
         """POST /v1/solve and insist on 200, showing the problem document otherwise."""

@@ -7,7 +7,10 @@ something that shares none of its code:
   (``"1/3"``, ``"0.25"``, ``"2.5e-3"``, ``"40%"``, JSON numbers by their
   decimal text);
 * :func:`solve_exact` uses sympy ``Rational`` matrices and exact LU solves;
-* :func:`solve_float` follows the same algebra with numpy ``float64``.
+* :func:`solve_float` follows the same algebra with numpy ``float64``;
+* :func:`sensitivity_reference` solves a chain with named parameters (values
+  written as expressions such as ``"1 - drop"``) in the field of rational
+  functions of each parameter and differentiates every metric symbolically there.
 
 Terminology: a state is *absorbing* if it has no outgoing transitions, only a
 self-loop, or is declared ``"absorbing": true``.  Among the other states, a
@@ -26,12 +29,14 @@ Both solvers return the same plain structure (``None`` stands for JSON null):
 from __future__ import annotations
 
 import json
+import re
 from dataclasses import dataclass
 from fractions import Fraction
 
 import numpy as np
 import sympy
 from sympy import Rational
+from sympy.polys.matrices import DomainMatrix
 
 ZERO = Rational(0)
 ONE = Rational(1)
@@ -92,8 +97,12 @@ def parse_chain_text(body_text: str) -> Chain:
     return parse_chain(body["chain"])
 
 
-def parse_chain(chain: dict) -> Chain:
-    """Resolve states, normalise weights and apply the absorbing rule."""
+def parse_chain(chain: dict, read=parse_value) -> Chain:
+    """Resolve states, normalise weights and apply the absorbing rule.
+
+    ``read`` turns one wire value into a Rational; :func:`parse_parametric_chain`
+    passes one that evaluates expressions at the parameter values in force.
+    """
     states: list[str] = []
     declared_absorbing: set[str] = set()
 
@@ -118,7 +127,7 @@ def parse_chain(chain: dict) -> Chain:
         kind = "probability" if "probability" in tr else "weight"
         assert kinds.setdefault(src, kind) == kind, "mixed kinds in one row"
         row = raw_rows.setdefault(src, {})
-        row[dst] = row.get(dst, ZERO) + parse_value(tr[kind])
+        row[dst] = row.get(dst, ZERO) + read(tr[kind])
 
     rows: dict[str, dict[str, Rational]] = {}
     for src, row in raw_rows.items():
@@ -145,7 +154,7 @@ def parse_chain(chain: dict) -> Chain:
     if isinstance(start_raw, str):
         start = {start_raw: ONE}
     else:
-        start = {sid: parse_value(v) for sid, v in start_raw.items()}
+        start = {sid: read(v) for sid, v in start_raw.items()}
         assert sum(start.values(), ZERO) == 1, "start distribution must sum to 1"
     for sid in start:
         assert sid in states, f"start state {sid} is not a state"
@@ -382,3 +391,321 @@ def solve_float(chain: Chain) -> dict:
     per = _per_state(chain, st, 0.0, 1.0, linear)
     start = {s: float(w) for s, w in chain.start.items()}
     return _assemble(chain, st, per, start, 1.0, 0.0, lambda w: w == 0, lambda x, y: x / y)
+
+
+# --------------------------------------------------------------------------
+# Parameters: expressions, the symbolic solution and its derivatives
+# --------------------------------------------------------------------------
+#
+# A chain may declare ``"parameters": {"drop": "1/40"}`` and write any value as
+# an expression over them (``"1 - drop"``, ``"2*drop/(1 + drop)"``, ``"drop^-1"``).
+# Here, for each parameter x in turn (the others held at their values), every
+# value becomes an element of the field QQ(x) of exact rational functions, the
+# linear systems are solved in that field, and each metric is differentiated
+# symbolically there before substituting the value in force.  The service
+# instead differentiates its linear systems at a point, so the two share no
+# algebra beyond the definitions of the metrics.
+
+_TOKEN = re.compile(
+    r"\s*(?:(?P<num>(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?)"
+    r"|(?P<name>[A-Za-z_][A-Za-z0-9_]*)|(?P<op>[-+*/^()]))"
+)
+
+
+def parse_expression(text: str, symbols: dict[str, sympy.Symbol]) -> sympy.Expr:
+    """An exact sympy expression for ``+ - * /``, integer ``^``, parentheses, numbers, names.
+
+    Recursive descent over the usual grammar; unary minus binds looser than
+    ``^`` (``-p^2`` is ``-(p^2)``) and an exponent is a signed integer.
+    """
+    tokens: list[tuple[str, str]] = []
+    pos = 0
+    text = text.rstrip()
+    while pos < len(text):
+        m = _TOKEN.match(text, pos)
+        if not m or m.end() == pos:
+            raise ValueError(f"cannot read {text!r} at column {pos + 1}")
+        kind = m.lastgroup
+        tokens.append((kind, m.group(kind)))
+        pos = m.end()
+    at = 0
+
+    def peek() -> str | None:
+        return tokens[at][1] if at < len(tokens) and tokens[at][0] == "op" else None
+
+    def take(op: str) -> bool:
+        nonlocal at
+        if peek() == op:
+            at += 1
+            return True
+        return False
+
+    def expr():
+        value = term()
+        while peek() in ("+", "-"):
+            if take("+"):
+                value = value + term()
+            else:
+                take("-")
+                value = value - term()
+        return value
+
+    def term():
+        value = unary()
+        while peek() in ("*", "/"):
+            if take("*"):
+                value = value * unary()
+            else:
+                take("/")
+                value = value / unary()
+        return value
+
+    def unary():
+        if take("-"):
+            return -unary()
+        if take("+"):
+            return unary()
+        return power()
+
+    def power():
+        nonlocal at
+        base = atom()
+        if take("^"):
+            sign = -1 if take("-") else 1
+            if sign == 1:
+                take("+")
+            if at >= len(tokens) or tokens[at][0] != "num" or not tokens[at][1].isdigit():
+                raise ValueError(f"{text!r}: an exponent must be an integer")
+            exponent = sign * int(tokens[at][1])
+            at += 1
+            return base**exponent
+        return base
+
+    def atom():
+        nonlocal at
+        if at >= len(tokens):
+            raise ValueError(f"{text!r}: unexpected end")
+        kind, tok = tokens[at]
+        if kind == "num":
+            at += 1
+            frac = Fraction(tok)
+            return Rational(frac.numerator, frac.denominator)
+        if kind == "name":
+            at += 1
+            if tok not in symbols:
+                raise ValueError(f"{text!r}: unknown name {tok!r}")
+            return symbols[tok]
+        if take("("):
+            inner = expr()
+            if not take(")"):
+                raise ValueError(f"{text!r}: missing ')'")
+            return inner
+        raise ValueError(f"{text!r}: unexpected {tok!r}")
+
+    result = expr()
+    if at != len(tokens):
+        raise ValueError(f"{text!r}: unexpected {tokens[at][1]!r}")
+    return sympy.sympify(result)
+
+
+def read_parametric(raw, symbols: dict[str, sympy.Symbol]) -> sympy.Expr:
+    """One wire value as an exact expression over the parameters (plain numbers included)."""
+    if isinstance(raw, (bool, int)) or (isinstance(raw, str) and raw.strip().endswith("%")):
+        return parse_value(raw)
+    if not isinstance(raw, str):
+        raise ValueError(f"not a value: {raw!r}")
+    return parse_expression(raw, symbols)
+
+
+@dataclass
+class ParametricChain:
+    """A chain whose rows and start are exact expressions in its parameters."""
+
+    symbols: dict[str, sympy.Symbol]  # parameter name -> symbol, in declaration order
+    values: dict[sympy.Symbol, Rational]  # the values in force (defaults, then overrides)
+    kinds: dict[str, str]  # from -> "probability" or "weight"
+    raw_rows: dict[str, dict[str, sympy.Expr]]  # from -> to -> value as written (pairs summed)
+    raw_start: dict[str, sympy.Expr]
+    at_values: Chain  # the same chain evaluated at ``values`` (decides the structure)
+
+
+def parse_parametric_chain(chain: dict, overrides: dict | None = None) -> ParametricChain:
+    """Resolve a chain with ``parameters``; ``overrides`` are the request's ``parameters``.
+
+    Probability rows and a start distribution must sum to 1 identically (as
+    rational functions of every parameter), not only at the values.
+    """
+    declared = chain.get("parameters", {})
+    assert declared, "a parametric chain declares at least one parameter"
+    symbols = {name: sympy.Symbol(name) for name in declared}
+    values = {symbols[n]: parse_value(v) for n, v in declared.items()}
+    for name, v in (overrides or {}).items():
+        values[symbols[name]] = parse_value(v)
+
+    def at_values(raw) -> Rational:
+        x = read_parametric(raw, symbols).xreplace(values)
+        assert isinstance(x, Rational), f"{raw!r} does not evaluate to a rational: {x}"
+        return x
+
+    numeric = parse_chain(chain, read=at_values)
+    raw_rows: dict[str, dict[str, sympy.Expr]] = {}
+    kinds: dict[str, str] = {}
+    for tr in chain["transitions"]:
+        src, dst = tr["from"], tr["to"]
+        kinds[src] = "probability" if "probability" in tr else "weight"
+        row = raw_rows.setdefault(src, {})
+        row[dst] = row.get(dst, ZERO) + read_parametric(tr[kinds[src]], symbols)
+    for src, row in raw_rows.items():
+        if kinds[src] == "probability" and src not in numeric.absorbing:
+            assert sympy.cancel(sum(row.values()) - 1) == 0, f"row {src} is not identically 1"
+    start_raw = chain["start"]
+    if isinstance(start_raw, str):
+        raw_start = {start_raw: ONE}
+    else:
+        raw_start = {sid: read_parametric(v, symbols) for sid, v in start_raw.items()}
+        assert sympy.cancel(sum(raw_start.values()) - 1) == 0, "start is not identically 1"
+    return ParametricChain(symbols, values, kinds, raw_rows, raw_start, numeric)
+
+
+def in_one_parameter(pc: ParametricChain, name: str):
+    """(field, chain): the chain over QQ(name), every other parameter held at its value.
+
+    A partial derivative holds the other parameters fixed by definition, and
+    one-variable rational functions keep the exact solve fast.  Weights are
+    normalised in the field, so a weight's derivative flows through the normalisation.
+    """
+    sym = pc.symbols[name]
+    fixed = {s: v for s, v in pc.values.items() if s != sym}
+    field = sympy.QQ.frac_field(sym)
+
+    def element(expr):
+        return field.from_sympy(sympy.sympify(expr).xreplace(fixed))
+
+    rows: dict[str, dict[str, object]] = {}
+    for src, row in pc.raw_rows.items():
+        entries = {dst: element(x) for dst, x in row.items()}
+        if pc.kinds[src] == "weight":
+            total = sum(entries.values(), field.zero)
+            entries = {dst: w / total for dst, w in entries.items()}
+        rows[src] = entries
+    for sid in pc.at_values.absorbing:
+        rows[sid] = {sid: field.one}
+    start = {sid: element(x) for sid, x in pc.raw_start.items()}
+    return field, Chain(pc.at_values.states, rows, pc.at_values.absorbing, start)
+
+
+def solve_parametric(pc: ParametricChain, name: str):
+    """(field, metrics): every metric as an element of QQ(name), shaped as :func:`solve_exact`.
+
+    The structure (which states are transient, which trap the walk) is taken at
+    the values in force; it stays the same nearby as long as no expression
+    crosses zero there.
+    """
+    field, chain = in_one_parameter(pc, name)
+    st = structure(pc.at_values)
+
+    def linear(U, columns):
+        n = len(U)
+        m = DomainMatrix(_q_minus_in(chain, U, field), (n, n), field)
+        rhs = DomainMatrix([list(r) for r in zip(*columns)], (n, len(columns)), field)
+        sol = m.lu_solve(rhs)
+        assert m * sol == rhs  # the field is exact: the solve must be too
+        rows = sol.to_list()
+        return [[rows[r][k] for r in range(n)] for k in range(len(columns))]
+
+    per = _per_state(chain, st, field.zero, field.one, linear)
+    return field, _assemble(chain, st, per, chain.start, field.one, field.zero,
+                            lambda w: w == field.zero, lambda x, y: x / y)
+
+
+def _q_minus_in(chain: Chain, U: list[str], field) -> list[list[object]]:
+    """I - Q on the transient set, with entries in ``field``."""
+    return [[(field.one if r == c else field.zero) - chain.rows[r].get(c, field.zero) for c in U]
+            for r in U]
+
+
+def metric_leaves(metrics: dict):
+    """Every number of one metrics dict, keyed as the service keys its sensitivities.
+
+    Yields ``((key, sub_key_or_None), value)``: ``("absorption", a)``,
+    ``("never_absorbed", None)``, ``("steps_mean", None)``, ``("steps_variance", None)``,
+    ``("steps_mean_given", a)``, ``("visits", j)``.  Works on the reference's
+    plain structure and on a response's metrics alike (keys missing there are skipped).
+    """
+    for a, v in (metrics.get("absorption") or {}).items():
+        yield ("absorption", a), v
+    if "never_absorbed" in metrics:
+        yield ("never_absorbed", None), metrics["never_absorbed"]
+    steps = metrics.get("steps")
+    if steps is not None:
+        yield ("steps_mean", None), steps.get("mean")
+        yield ("steps_variance", None), steps.get("variance")
+        for a, v in (steps.get("mean_given") or {}).items():
+            yield ("steps_mean_given", a), v
+    for j, v in (metrics.get("visits") or {}).items():
+        yield ("visits", j), v
+
+
+def metrics_from_leaves(leaves: dict) -> dict:
+    """The inverse of :func:`metric_leaves`: the plain nested metrics structure."""
+    out = {"absorption": {}, "never_absorbed": None,
+           "steps": {"mean": None, "variance": None, "mean_given": {}}, "visits": {}}
+    for (key, sub), v in leaves.items():
+        if key == "absorption":
+            out["absorption"][sub] = v
+        elif key == "never_absorbed":
+            out["never_absorbed"] = v
+        elif key == "steps_mean":
+            out["steps"]["mean"] = v
+        elif key == "steps_variance":
+            out["steps"]["variance"] = v
+        elif key == "steps_mean_given":
+            out["steps"]["mean_given"][sub] = v
+        else:
+            out["visits"][sub] = v
+    return out
+
+
+def _at(v, x: Rational) -> Rational:
+    """A one-variable rational function evaluated exactly at x."""
+    point = [(v.numer.ring.gens[0], sympy.QQ(int(x.p), int(x.q)))]
+    num, den = sympy.QQ(v.numer.evaluate(point)), sympy.QQ(v.denom.evaluate(point))
+    assert den != 0, f"{v} has a pole at {x}"
+    return sympy.QQ.to_sympy(num / den)
+
+
+def sensitivity_reference(pc: ParametricChain) -> dict:
+    """The metrics at the values in force and their derivatives, from the start and each state.
+
+    Returns ``{"metrics": {leaf: x}, "sensitivity": {name: {leaf: (d, e)}},
+    "by_state": {s: {"metrics": ..., "sensitivity": ...}}}`` with ``leaf`` as in
+    :func:`metric_leaves`, exact Rationals and ``None`` for null; ``e`` (the
+    elasticity ``d * value / metric``) is ``None`` where the metric is 0.  A
+    state's own entry holds its start fixed, so only the chain's dependence counts.
+    Each metric is differentiated symbolically in sympy's field of rational
+    functions (``FracElement.diff``: the quotient rule on exact polynomials).
+    """
+    out: dict = {}
+    for name, sym in pc.symbols.items():
+        field, result = solve_parametric(pc, name)
+        gen, x = field.gens[0], pc.values[sym]
+        starts = [(out, result)]
+        for s, m in result["by_state"].items():
+            starts.append((out.setdefault("by_state", {}).setdefault(s, {}), m))
+        for slot, metrics in starts:
+            leaves = dict(metric_leaves(metrics))
+            values = {leaf: (None if v is None else _at(v, x)) for leaf, v in leaves.items()}
+            if "metrics" in slot:  # every parameter's solve must agree on the values
+                assert slot["metrics"] == values, name
+            slot["metrics"] = values
+            entries = {}
+            for leaf, v in leaves.items():
+                if v is None:
+                    entries[leaf] = (None, None)
+                    continue
+                derivative = _at(v.diff(gen), x)
+                metric = values[leaf]
+                entries[leaf] = (derivative, None if metric == 0 else derivative * x / metric)
+            slot.setdefault("sensitivity", {})[name] = entries
+    out.setdefault("by_state", {})
+    return out

@@ -41,8 +41,12 @@ pub struct CostDimension {
     pub name: String,
     /// Cost paid on each visit to each state (on arrival, once, for an absorbing state).
     pub on_states: Vec<BigRational>,
+    /// Gradient of each state's cost with respect to each parameter.
+    pub on_states_gradient: Vec<Vec<BigRational>>,
     /// Cost paid each time each transition is taken, aligned with `targets`.
     pub on_transitions: Vec<BigRational>,
+    /// Gradient of each transition's cost with respect to each parameter.
+    pub on_transitions_gradient: Vec<Vec<BigRational>>,
 }
 
 impl Chain {

@@ -62,6 +62,20 @@ impl Dual {
         }
     }
 
+    /// `self * other` with the product rule.
+    #[must_use]
+    pub fn mul(&self, other: &Dual) -> Dual {
+        Dual {
+            value: &self.value * &other.value,
+            gradient: self
+                .gradient
+                .iter()
+                .zip(&other.gradient)
+                .map(|(g, h)| g * &other.value + &self.value * h)
+                .collect(),
+        }
+    }
+
     /// `self / total` with the quotient rule; `total` must not be zero.
     #[must_use]
     pub fn ratio(&self, total: &Dual) -> Dual {

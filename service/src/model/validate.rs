@@ -105,7 +105,7 @@ impl Issues {
     }
 
     /// Evaluates a cost map, recording issues; only valid amounts are returned.
-    fn costs(&mut self, cost: Option<&Cost>, pointer: &str) -> BTreeMap<String, BigRational> {
+    fn costs(&mut self, cost: Option<&Cost>, pointer: &str) -> BTreeMap<String, Dual> {
         let mut amounts = BTreeMap::new();
         for (dimension, amount) in cost.into_iter().flatten() {
             let at = format!("{pointer}/cost/{}", pointer_token(dimension));
@@ -113,7 +113,7 @@ impl Issues {
                 self.add(at.clone(), "a cost dimension needs a non-empty name");
             }
             if let Some(value) = self.value(amount, at) {
-                amounts.insert(dimension.clone(), value.value);
+                amounts.insert(dimension.clone(), value);
             }
         }
         amounts
@@ -136,7 +136,7 @@ impl Issues {
                     format!("'{name}' is not a parameter name: use letters, digits and _, not starting with a digit"),
                 );
             }
-            let number = parse_exact(&value.text()).unwrap_or_else(|detail| {
+            let number = constant(&value.text()).unwrap_or_else(|detail| {
                 self.add(
                     at,
                     format!("a parameter's default must be a number: {detail}"),
@@ -162,13 +162,26 @@ impl Issues {
                         format!("unknown parameter '{name}'; the chain declares {known}"),
                     );
                 }
-                Some(i) => match parse_exact(&value.text()) {
+                Some(i) => match constant(&value.text()) {
                     Ok(number) => self.values[i] = number,
                     Err(detail) => self.add(at, detail),
                 },
             }
         }
     }
+}
+
+/// A parameter's value: a number, or an expression of numbers alone such as `"1/4 + 1/8"`.
+fn constant(text: &str) -> Result<BigRational, String> {
+    parse_exact(text).or_else(|numeral| {
+        if !numeral.contains("is not a number") {
+            return Err(numeral);
+        }
+        parse(text, &[])
+            .and_then(|e| e.evaluate(&[]))
+            .map(|d| d.value)
+            .map_err(|e| format!("'{text}' is not a number ({e})"))
+    })
 }
 
 #[derive(Clone, Copy, PartialEq, Eq)]
@@ -196,7 +209,7 @@ struct Row {
     targets: BTreeMap<usize, (Dual, Vec<usize>)>,
     /// Target -> cost dimension -> Σ value × cost over the transitions to that target (repeated
     /// pairs with different costs average them, weighted by their probabilities).
-    weighted_costs: BTreeMap<usize, BTreeMap<String, BigRational>>,
+    weighted_costs: BTreeMap<usize, BTreeMap<String, Dual>>,
 }
 
 /// Validates a chain description at its parameters' values, with `overrides` (the request's
@@ -221,7 +234,7 @@ pub fn validate(
     };
 
     // Declared states, in order.
-    let mut state_costs: Vec<(usize, String, BigRational)> = Vec::new();
+    let mut state_costs: Vec<(usize, String, Dual)> = Vec::new();
     let mut declared_absorbing: HashMap<usize, usize> = HashMap::new();
     let mut declared_at: HashMap<usize, usize> = HashMap::new();
     for (k, state) in spec.states.iter().enumerate() {
@@ -325,7 +338,10 @@ pub fn validate(
             entry.1.push(k);
             let costs = row.weighted_costs.entry(to).or_default();
             for (dimension, amount) in transition_cost {
-                *costs.entry(dimension).or_insert_with(BigRational::zero) += &value.value * amount;
+                costs
+                    .entry(dimension)
+                    .or_insert_with(|| Dual::constant(BigRational::zero(), parameter_count))
+                    .add_assign(&value.mul(&amount));
             }
         }
     }
@@ -345,7 +361,7 @@ pub fn validate(
     let mut targets = Vec::new();
     let mut probabilities = Vec::new();
     let mut gradients = Vec::new();
-    let mut weighted_costs: Vec<BTreeMap<String, BigRational>> = Vec::new();
+    let mut weighted_costs: Vec<BTreeMap<String, Dual>> = Vec::new();
     for (state, id) in ids.iter().enumerate() {
         row_start.push(targets.len());
         let Some(row) = rows.remove(&state) else {
@@ -442,7 +458,7 @@ pub fn validate(
                 weighted_costs.push(
                     costs
                         .into_iter()
-                        .map(|(dimension, sum)| (dimension, sum / &value.value))
+                        .map(|(dimension, sum)| (dimension, sum.ratio(&value)))
                         .collect(),
                 );
                 targets.push(target);
@@ -464,23 +480,31 @@ pub fn validate(
         .map(|(_, d, _)| d.clone())
         .chain(weighted_costs.iter().flat_map(|c| c.keys().cloned()))
         .collect();
+    let zero = Dual::constant(BigRational::zero(), parameter_count);
     let costs = dimensions
         .into_iter()
         .map(|dimension| {
-            let mut on_states = vec![BigRational::zero(); n];
+            let mut on_states = vec![zero.clone(); n];
             for (state, d, amount) in &state_costs {
                 if *d == dimension {
                     on_states[*state] = amount.clone();
                 }
             }
-            let on_transitions = weighted_costs
+            let on_transitions: Vec<Dual> = weighted_costs
                 .iter()
-                .map(|c| c.get(&dimension).cloned().unwrap_or_else(BigRational::zero))
+                .map(|c| c.get(&dimension).cloned().unwrap_or_else(|| zero.clone()))
                 .collect();
+            let split = |duals: Vec<Dual>| -> (Vec<BigRational>, Vec<Vec<BigRational>>) {
+                duals.into_iter().map(|d| (d.value, d.gradient)).unzip()
+            };
+            let (on_states, on_states_gradient) = split(on_states);
+            let (on_transitions, on_transitions_gradient) = split(on_transitions);
             CostDimension {
                 name: dimension,
                 on_states,
+                on_states_gradient,
                 on_transitions,
+                on_transitions_gradient,
             }
         })
         .collect();

@@ -26,6 +26,9 @@ pub struct QuantileTarget<S> {
 pub struct Propagated<S> {
     /// `by_outcome[k][n]` = P(absorbed in absorbing outcome `k` within `n` steps), n ≤ horizon.
     pub by_outcome: Vec<Vec<S>>,
+    /// `derivatives[j][k][n]`: the derivative of `by_outcome[k][n]` with respect to parameter `j`
+    /// (empty when no derivatives were asked for).
+    pub derivatives: Vec<Vec<Vec<S>>>,
     /// For each target, the smallest n reaching it, or `None` if not reached.
     pub quantiles: Vec<Option<u64>>,
     /// Steps taken in all, horizon included.
@@ -33,14 +36,18 @@ pub struct Propagated<S> {
 }
 
 /// Propagates a start distribution for `horizon` steps, then further until every quantile target
-/// is reached, the extra-step limit, or `extra_budget` runs out.
+/// is reached, the extra-step limit, or `extra_budget` runs out. With `start_gradients` (one row
+/// per start entry, one value per parameter), the derivatives of the distribution up to the
+/// horizon are propagated alongside: `dv(n+1) = dv(n) P + v(n) dP`.
 ///
 /// # Errors
 /// [`SolveError::BudgetExceeded`] when `budget` runs out before the horizon.
+#[allow(clippy::too_many_arguments)]
 pub fn propagate<S: Scalar>(
     chain: &Chain,
     structure: &Structure,
     start: &[(usize, S)],
+    start_gradients: Option<&[Vec<S>]>,
     horizon: u64,
     targets: &[QuantileTarget<S>],
     budget: &Budget,
@@ -48,27 +55,47 @@ pub fn propagate<S: Scalar>(
 ) -> Result<Propagated<S>, SolveError> {
     let n = chain.len();
     let outcome_of = |state: usize| structure.absorbing.binary_search(&state).ok();
-    let rows: Vec<Vec<(usize, S)>> = (0..n)
+    let parameters = start_gradients.map_or(0, |_| chain.parameters.len());
+    // (target, probability, its gradient) for each transition out of a non-absorbing state.
+    let rows: Vec<Vec<(usize, S, Vec<S>)>> = (0..n)
         .map(|i| {
             if structure.kind[i] == StateKind::Absorbing {
                 return Vec::new();
             }
             chain
                 .row(i)
-                .map(|(j, p)| (j, S::from_rational(p)))
+                .zip(chain.row_gradients(i))
+                .map(|((j, p), (_, g))| {
+                    let gradient = g[..parameters].iter().map(S::from_rational).collect();
+                    (j, S::from_rational(p), gradient)
+                })
                 .collect()
         })
         .collect();
     let outcomes = structure.absorbing.len();
     let mut mass = vec![S::zero(); n];
     let mut absorbed = vec![S::zero(); outcomes];
-    for (state, p) in start {
+    let mut dmass = vec![vec![S::zero(); n]; parameters];
+    let mut dabsorbed = vec![vec![S::zero(); outcomes]; parameters];
+    for (e, (state, p)) in start.iter().enumerate() {
         match outcome_of(*state) {
             Some(k) => absorbed[k] = absorbed[k].add(p),
             None => mass[*state] = mass[*state].add(p),
         }
+        for j in 0..parameters {
+            let g = &start_gradients.expect("parameters > 0")[e][j];
+            match outcome_of(*state) {
+                Some(k) => dabsorbed[j][k] = dabsorbed[j][k].add(g),
+                None => dmass[j][*state] = dmass[j][*state].add(g),
+            }
+        }
     }
     let mut by_outcome: Vec<Vec<S>> = absorbed.iter().map(|a| vec![a.clone()]).collect();
+    let mut derivatives: Vec<Vec<Vec<S>>> = dabsorbed
+        .iter()
+        .map(|d| d.iter().map(|a| vec![a.clone()]).collect())
+        .collect();
+    let mut dnext = vec![vec![S::zero(); n]; parameters];
     let mut quantiles: Vec<Option<u64>> = vec![None; targets.len()];
     let record_quantiles = |step: u64, absorbed: &[S], quantiles: &mut Vec<Option<u64>>| {
         let total = absorbed.iter().fold(S::zero(), |sum, a| sum.add(a));
@@ -104,18 +131,33 @@ pub fn propagate<S: Scalar>(
             budget.check()?;
         }
         step += 1;
+        // Derivatives are only reported up to the horizon.
+        let differentiate = step <= horizon;
         let mut touched = Vec::with_capacity(active.len());
         for &i in &active {
             let m = std::mem::replace(&mut mass[i], S::zero());
-            for (j, p) in &rows[i] {
+            let dm: Vec<S> = if differentiate {
+                dmass
+                    .iter_mut()
+                    .map(|d| std::mem::replace(&mut d[i], S::zero()))
+                    .collect()
+            } else {
+                Vec::new()
+            };
+            for (j, p, gradient) in &rows[i] {
                 let flow = m.mul(p);
                 match outcome_of(*j) {
                     Some(k) => absorbed[k] = absorbed[k].add(&flow),
                     None => {
-                        if next[*j].is_zero() {
-                            touched.push(*j);
-                        }
+                        touched.push(*j);
                         next[*j] = next[*j].add(&flow);
+                    }
+                }
+                for (q, dm) in dm.iter().enumerate() {
+                    let dflow = dm.mul(p).add(&m.mul(&gradient[q]));
+                    match outcome_of(*j) {
+                        Some(k) => dabsorbed[q][k] = dabsorbed[q][k].add(&dflow),
+                        None => dnext[q][*j] = dnext[q][*j].add(&dflow),
                     }
                 }
             }
@@ -124,6 +166,11 @@ pub fn propagate<S: Scalar>(
         touched.dedup();
         for &j in &touched {
             mass[j] = std::mem::replace(&mut next[j], S::zero());
+            if differentiate {
+                for q in 0..parameters {
+                    dmass[q][j] = std::mem::replace(&mut dnext[q][j], S::zero());
+                }
+            }
         }
         active = touched
             .into_iter()
@@ -133,11 +180,19 @@ pub fn propagate<S: Scalar>(
             for (k, a) in absorbed.iter().enumerate() {
                 by_outcome[k].push(a.clone());
             }
+            for (q, columns) in derivatives.iter_mut().enumerate() {
+                for (k, column) in columns.iter_mut().enumerate() {
+                    column.push(dabsorbed[q][k].clone());
+                }
+            }
         }
         record_quantiles(step, &absorbed, &mut quantiles);
     }
-    // Mass that never left (nothing active before the horizon) keeps the cdf flat.
-    for column in &mut by_outcome {
+    // Once nothing moves (all absorbed before the horizon), the columns stay flat.
+    for column in by_outcome
+        .iter_mut()
+        .chain(derivatives.iter_mut().flatten())
+    {
         while (column.len() as u64) <= horizon {
             let last = column.last().cloned().unwrap_or_else(S::zero);
             column.push(last);
@@ -145,6 +200,7 @@ pub fn propagate<S: Scalar>(
     }
     Ok(Propagated {
         by_outcome,
+        derivatives,
         quantiles,
         steps_taken: step,
     })

@@ -21,8 +21,8 @@ use std::time::Duration;
 
 use num_rational::BigRational;
 use oddsmith_client::types::{
-    Arithmetic, CostReport, Derivative, Distribution, Metrics, Number, Report, Sensitivity,
-    SolveResponse, SolverInfo, Steps, UsedArithmetic,
+    Arithmetic, CostReport, CostSensitivity, Derivative, Distribution, DistributionSensitivity,
+    Metrics, Number, Report, Sensitivity, SolveResponse, SolverInfo, Steps, UsedArithmetic,
 };
 
 use crate::model::chain::Chain;
@@ -327,7 +327,7 @@ fn run<S: Scalar>(
             .enumerate()
             .map(|(k, b)| d(b, Some(perturbation.dr(k))))
             .collect::<Result<_, _>>()?;
-        let vectors = if at.steps.is_empty() {
+        let vectors = if !wants_steps {
             Vectors {
                 outcome,
                 steps: Vec::new(),
@@ -354,6 +354,23 @@ fn run<S: Scalar>(
                 costs: Vec::new(),
             }
         };
+        let mut vectors = vectors;
+        if plan.report.contains(&Report::Costs) {
+            let j = derivatives.len();
+            for (dimension, values) in chain.costs.iter().zip(&at.costs) {
+                vectors.costs.push(cost_derivatives(
+                    chain,
+                    structure,
+                    dimension,
+                    j,
+                    &at.outcome,
+                    &vectors.outcome,
+                    values,
+                    &factors,
+                    budget,
+                )?);
+            }
+        }
         derivatives.push(vectors);
     }
 
@@ -407,18 +424,28 @@ fn run<S: Scalar>(
         .map(|g| g.iter().map(S::from_rational).collect())
         .collect();
     let mut warnings = chain.warnings.clone();
-    let distribution_for =
-        |start: &[(usize, S)], metrics: &mut Metrics, warnings: &mut Vec<String>| {
-            if plan.report.contains(&Report::Distribution) {
-                let (distribution, notes) = solution.distribution(start, plan, budget)?;
-                metrics.distribution = Some(distribution);
-                warnings.extend(notes);
+    let distribution_for = |start: &[(usize, S)],
+                            gradients: &[Vec<S>],
+                            metrics: &mut Metrics,
+                            warnings: &mut Vec<String>| {
+        if plan.report.contains(&Report::Distribution) {
+            let (distribution, sensitivities, notes) =
+                solution.distribution(start, gradients, plan, budget)?;
+            metrics.distribution = Some(distribution);
+            if let Some(by_parameter) = metrics.sensitivity.as_mut() {
+                for ((name, _), sensitivity) in chain.parameters.iter().zip(sensitivities) {
+                    if let Some(report) = by_parameter.get_mut(name) {
+                        report.distribution = Some(sensitivity);
+                    }
+                }
             }
-            Ok::<(), SolveError>(())
-        };
+            warnings.extend(notes);
+        }
+        Ok::<(), SolveError>(())
+    };
     let visits = visits_from(&start, &start_gradients)?;
     let mut metrics = solution.metrics(&start, &start_gradients, visits.as_ref(), plan);
-    distribution_for(&start, &mut metrics, &mut warnings)?;
+    distribution_for(&start, &start_gradients, &mut metrics, &mut warnings)?;
     let by_state = if plan.by_state {
         let mut table = BTreeMap::new();
         let still = vec![vec![S::zero(); parameters]];
@@ -428,7 +455,7 @@ fn run<S: Scalar>(
             let visits = visits_from(&start, &still)?;
             let mut metrics = solution.metrics(&start, &still, visits.as_ref(), plan);
             let mut notes = Vec::new();
-            distribution_for(&start, &mut metrics, &mut notes)?;
+            distribution_for(&start, &still, &mut metrics, &mut notes)?;
             table.insert(chain.ids[state].clone(), metrics);
         }
         Some(table)
@@ -600,6 +627,118 @@ fn cost_vectors<S: Scalar>(
         })
         .collect::<Result<_, _>>()?;
     debug_assert_eq!(mean.len(), n);
+    Ok(CostVectors {
+        mean,
+        second_moment,
+        joint,
+    })
+}
+
+/// Derivatives of the cost vectors with respect to parameter `parameter`: each vector solves
+/// `(I - Q) x = b`, so `dx = N (dQ x + db)`, with `b`'s derivative taken term by term (both the
+/// probabilities and the costs may depend on the parameter).
+#[allow(clippy::too_many_arguments)]
+fn cost_derivatives<S: Scalar>(
+    chain: &Chain,
+    structure: &Structure,
+    dimension: &crate::model::chain::CostDimension,
+    parameter: usize,
+    outcome: &[Vec<S>],
+    d_outcome: &[Vec<S>],
+    values: &CostVectors<S>,
+    factors: &Factors<S>,
+    budget: &Budget,
+) -> Result<CostVectors<S>, SolveError> {
+    struct Step<S> {
+        p: S,
+        dp: S,
+        a: S,
+        da: S,
+        target: usize,
+    }
+    let steps: Vec<Vec<Step<S>>> = structure
+        .transient
+        .iter()
+        .map(|&i| {
+            let state_cost = S::from_rational(&dimension.on_states[i]);
+            let d_state_cost = S::from_rational(&dimension.on_states_gradient[i][parameter]);
+            (chain.row_start[i]..chain.row_start[i + 1])
+                .map(|t| {
+                    let j = chain.targets[t];
+                    let mut a = state_cost.add(&S::from_rational(&dimension.on_transitions[t]));
+                    let mut da = d_state_cost.add(&S::from_rational(
+                        &dimension.on_transitions_gradient[t][parameter],
+                    ));
+                    if structure.kind[j] == StateKind::Absorbing {
+                        a = a.add(&S::from_rational(&dimension.on_states[j]));
+                        da = da.add(&S::from_rational(
+                            &dimension.on_states_gradient[j][parameter],
+                        ));
+                    }
+                    Step {
+                        p: S::from_rational(&chain.probabilities[t]),
+                        dp: S::from_rational(&chain.gradients[t][parameter]),
+                        a,
+                        da,
+                        target: j,
+                    }
+                })
+                .collect()
+        })
+        .collect();
+    let at = |values: &[S], j: usize| match structure.position[j] {
+        Some(q) => values[q].clone(),
+        None => S::zero(),
+    };
+    let rhs = |term: &dyn Fn(&Step<S>) -> S| -> Vec<S> {
+        steps
+            .iter()
+            .map(|row| row.iter().fold(S::zero(), |sum, step| sum.add(&term(step))))
+            .collect()
+    };
+    let two = S::one().add(&S::one());
+    let mean = factors.solve(
+        rhs(&|s| {
+            s.dp.mul(&s.a.add(&at(&values.mean, s.target)))
+                .add(&s.p.mul(&s.da))
+        }),
+        budget,
+    )?;
+    let second_moment = factors.solve(
+        rhs(&|s| {
+            let m = at(&values.mean, s.target);
+            let dm = at(&mean, s.target);
+            let value =
+                s.a.mul(&s.a)
+                    .add(&two.mul(&s.a).mul(&m))
+                    .add(&at(&values.second_moment, s.target));
+            let change = two.mul(&s.a.mul(&s.da).add(&s.da.mul(&m)).add(&s.a.mul(&dm)));
+            s.dp.mul(&value).add(&s.p.mul(&change))
+        }),
+        budget,
+    )?;
+    let joint = (0..structure.absorbing.len())
+        .map(|k| {
+            let goal = structure.absorbing[k];
+            let h = |j: usize| {
+                if j == goal {
+                    S::one()
+                } else {
+                    at(&outcome[k], j)
+                }
+            };
+            factors.solve(
+                rhs(&|s| {
+                    let value = s.a.mul(&h(s.target)).add(&at(&values.joint[k], s.target));
+                    let change =
+                        s.da.mul(&h(s.target))
+                            .add(&s.a.mul(&at(&d_outcome[k], s.target)));
+                    s.dp.mul(&value).add(&s.p.mul(&change))
+                }),
+                budget,
+            )
+        })
+        .collect::<Result<_, _>>()?;
     Ok(CostVectors {
         mean,
         second_moment,
@@ -970,6 +1109,89 @@ impl<S: Scalar> Solution<'_, S> {
                         .collect(),
                 );
             }
+            if plan.report.contains(&Report::Costs) {
+                let mut costs = BTreeMap::new();
+                for ((dimension, values), derivatives) in
+                    self.chain.costs.iter().zip(&self.at.costs).zip(&d.costs)
+                {
+                    // Terms paid by starts in absorbing states: Σ s_a c_a^power and its
+                    // derivative.
+                    let on_arrival = |power: u32, only: Option<usize>| {
+                        let mut value = S::zero();
+                        let mut change = S::zero();
+                        for ((state, mass), ds) in start.iter().zip(&ds) {
+                            if self.structure.kind[*state] != StateKind::Absorbing
+                                || only.is_some_and(|a| a != *state)
+                            {
+                                continue;
+                            }
+                            let c = S::from_rational(&dimension.on_states[*state]);
+                            let dc = S::from_rational(&dimension.on_states_gradient[*state][j]);
+                            let (term, d_term) = if power == 2 {
+                                (c.mul(&c), c.add(&c).mul(&dc))
+                            } else {
+                                (c, dc)
+                            };
+                            value = value.add(&mass.mul(&term));
+                            change = change.add(&ds.mul(&term)).add(&mass.mul(&d_term));
+                        }
+                        (value, change)
+                    };
+                    let (arrival, d_arrival) = on_arrival(1, None);
+                    let (arrival2, d_arrival2) = on_arrival(2, None);
+                    let mean = self.weighted(start, &values.mean).add(&arrival);
+                    let d_mean = self
+                        .weighted_derivative(start, &ds, &values.mean, &derivatives.mean)
+                        .add(&d_arrival);
+                    let second = self.weighted(start, &values.second_moment).add(&arrival2);
+                    let d_second = self
+                        .weighted_derivative(
+                            start,
+                            &ds,
+                            &values.second_moment,
+                            &derivatives.second_moment,
+                        )
+                        .add(&d_arrival2);
+                    let variance = second.sub(&mean.mul(&mean));
+                    let d_variance = d_second.sub(&mean.add(&mean).mul(&d_mean));
+                    let mean_given = self
+                        .structure
+                        .absorbing
+                        .iter()
+                        .enumerate()
+                        .map(|(k, &a)| {
+                            let (arrival, d_arrival) = on_arrival(1, Some(a));
+                            let joint = self.weighted(start, &values.joint[k]).add(&arrival);
+                            let d_joint = self
+                                .weighted_derivative(
+                                    start,
+                                    &ds,
+                                    &values.joint[k],
+                                    &derivatives.joint[k],
+                                )
+                                .add(&d_arrival);
+                            let p = &absorbed[k];
+                            let given = (!p.is_zero()).then(|| joint.div(p));
+                            let derivative = given.as_ref().map(|_| {
+                                d_joint
+                                    .mul(p)
+                                    .sub(&joint.mul(&d_absorbed[k]))
+                                    .div(&p.mul(p))
+                            });
+                            (ids[a].clone(), entry(given.as_ref(), derivative))
+                        })
+                        .collect();
+                    costs.insert(
+                        dimension.name.clone(),
+                        CostSensitivity {
+                            mean: entry(Some(&mean), finite.then_some(d_mean)),
+                            variance: entry(Some(&variance), finite.then_some(d_variance)),
+                            mean_given,
+                        },
+                    );
+                }
+                report.costs = Some(costs);
+            }
             sensitivity.insert(name.clone(), report);
         }
         metrics.sensitivity = Some(sensitivity);
@@ -981,9 +1203,10 @@ impl<S: Scalar> Solution<'_, S> {
     fn distribution(
         &self,
         start: &[(usize, S)],
+        gradients: &[Vec<S>],
         plan: &Plan,
         budget: &Budget,
-    ) -> Result<(Distribution, Vec<String>), SolveError> {
+    ) -> Result<(Distribution, Vec<DistributionSensitivity>, Vec<String>), SolveError> {
         let ids = &self.chain.ids;
         let absorbing_count = self.structure.absorbing.len();
         let no_gradients = vec![Vec::new(); start.len()];
@@ -1033,10 +1256,12 @@ impl<S: Scalar> Solution<'_, S> {
         let extra = budget.share(
             0.5 + 0.5 * budget.elapsed().as_secs_f64() / budget.limit().as_secs_f64().max(1e-9),
         );
+        let differentiate = plan.report.contains(&Report::Sensitivity);
         let found = distribution::propagate(
             self.chain,
             self.structure,
             start,
+            differentiate.then_some(gradients),
             horizon,
             &targets,
             budget,
@@ -1088,6 +1313,47 @@ impl<S: Scalar> Solution<'_, S> {
                 .map(Scalar::to_number)
                 .collect::<Vec<Number>>()
         };
+        let sensitivities = found
+            .derivatives
+            .iter()
+            .zip(&self.chain.parameters)
+            .map(|(columns, (_, theta))| {
+                let theta = S::from_rational(theta);
+                let entry = |value: &S, derivative: S| Derivative {
+                    elasticity: elasticity(&derivative, &theta, value).map(|e| e.to_number()),
+                    derivative: Some(derivative.to_number()),
+                };
+                let d_cdf: Vec<S> = (0..=horizon as usize)
+                    .map(|n| {
+                        columns
+                            .iter()
+                            .fold(S::zero(), |sum, column| sum.add(&column[n]))
+                    })
+                    .collect();
+                DistributionSensitivity {
+                    cdf: cdf
+                        .iter()
+                        .zip(&d_cdf)
+                        .map(|(v, d)| entry(v, d.clone()))
+                        .collect(),
+                    by_outcome: self
+                        .structure
+                        .absorbing
+                        .iter()
+                        .zip(columns.iter().zip(&found.by_outcome))
+                        .map(|(&a, (d_column, column))| {
+                            let entries = column
+                                .iter()
+                                .zip(d_column)
+                                .map(|(v, d)| entry(v, d.clone()))
+                                .collect();
+                            (ids[a].clone(), entries)
+                        })
+                        .collect(),
+                    remaining: entry(&remaining, S::zero().sub(d_cdf.last().expect("entries"))),
+                }
+            })
+            .collect();
         Ok((
             Distribution {
                 horizon,
@@ -1103,6 +1369,7 @@ impl<S: Scalar> Solution<'_, S> {
                 quantiles_by_outcome,
                 remaining: remaining.to_number(),
             },
+            sensitivities,
             notes,
         ))
     }
