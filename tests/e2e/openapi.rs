@@ -70,7 +70,10 @@ async fn the_document_is_openapi_3_1_with_the_contract_field_names() {
             "costs",
         ],
     );
-    expect("DistributionSensitivity", &["cdf", "by_outcome", "remaining"]);
+    expect(
+        "DistributionSensitivity",
+        &["cdf", "by_outcome", "remaining"],
+    );
     expect("CostSensitivity", &["mean", "variance", "mean_given"]);
     expect("SweepAxis", &["parameter", "values", "from", "to", "count"]);
     expect("SweepResponse", &["sweep"]);

@@ -514,18 +514,26 @@ def test_override_of_an_unknown_parameter(service):
 
 @pytest.mark.parametrize("where", ["override", "default"])
 def test_parameter_value_must_be_a_number_and_is_quoted_whole(service, where):
-    """Parameter values are numbers, not expressions; the problem quotes the value as sent."""
+    """Parameter values are numbers (constant expressions such as "1/4 + 1/8" included), never
+    names; the problem quotes the value as sent."""
     chain = json.loads(json.dumps(CHEST))
     body = {"chain": chain}
     if where == "override":
-        body["parameters"] = {"drop": "1/4 + 1/8"}
+        body["parameters"] = {"drop": "1/4 + drop"}
         pointer = "/parameters/drop"
     else:
-        chain["parameters"] = {"drop": "1/4 + 1/8"}
+        chain["parameters"] = {"drop": "1/4 + drop"}
         pointer = "/chain/parameters/drop"
     doc, errors = _problem(service, body)
     assert list(errors) == [pointer], doc
-    assert "1/4 + 1/8" in errors[pointer], doc
+    assert "1/4 + drop" in errors[pointer], doc
+    # A constant expression is a number: 1/4 + 1/8 = 3/8.
+    if where == "override":
+        body["parameters"] = {"drop": "1/4 + 1/8"}
+    else:
+        chain["parameters"] = {"drop": "1/4 + 1/8"}
+    status, answer = service.post_text("/v1/solve", json.dumps(body))
+    assert status == 200, answer
 
 
 def test_row_summing_to_one_only_at_the_values_is_not_silent(service):

@@ -205,3 +205,75 @@ pub fn propagate<S: Scalar>(
         steps_taken: step,
     })
 }
+
+/// Whether the transient states reachable from `start` (and, with `goal`, able to reach that
+/// absorbing state) contain a cycle. Then mass keeps circulating for ever and a level equal to the
+/// limit of the distribution is approached but never reached at a finite step.
+#[must_use]
+pub fn circulates(
+    chain: &Chain,
+    structure: &Structure,
+    start: &[usize],
+    goal: Option<usize>,
+) -> bool {
+    let n = chain.len();
+    let transient = |s: usize| structure.kind[s] == StateKind::Transient;
+    let mut reached = vec![false; n];
+    let mut stack: Vec<usize> = start.iter().copied().filter(|&s| transient(s)).collect();
+    for &s in &stack {
+        reached[s] = true;
+    }
+    while let Some(s) = stack.pop() {
+        for (t, _) in chain.row(s) {
+            if transient(t) && !reached[t] {
+                reached[t] = true;
+                stack.push(t);
+            }
+        }
+    }
+    if let Some(goal) = goal {
+        // Keep only the states from which `goal` can be reached.
+        let mut reverse: Vec<Vec<usize>> = vec![Vec::new(); n];
+        for s in 0..n {
+            for (t, _) in chain.row(s) {
+                reverse[t].push(s);
+            }
+        }
+        let mut leads = vec![false; n];
+        let mut stack = vec![goal];
+        while let Some(s) = stack.pop() {
+            for &r in &reverse[s] {
+                if transient(r) && !leads[r] {
+                    leads[r] = true;
+                    stack.push(r);
+                }
+            }
+        }
+        for (r, l) in reached.iter_mut().zip(&leads) {
+            *r &= *l;
+        }
+    }
+    // Kahn's algorithm on the induced subgraph: a cycle is whatever cannot be peeled off.
+    let mut indegree = vec![0usize; n];
+    for s in (0..n).filter(|&s| reached[s]) {
+        for (t, _) in chain.row(s) {
+            if reached[t] {
+                indegree[t] += 1;
+            }
+        }
+    }
+    let mut ready: Vec<usize> = (0..n).filter(|&s| reached[s] && indegree[s] == 0).collect();
+    let mut peeled = 0;
+    while let Some(s) = ready.pop() {
+        peeled += 1;
+        for (t, _) in chain.row(s) {
+            if reached[t] {
+                indegree[t] -= 1;
+                if indegree[t] == 0 {
+                    ready.push(t);
+                }
+            }
+        }
+    }
+    peeled < reached.iter().filter(|&&r| r).count()
+}

@@ -1225,24 +1225,38 @@ impl<S: Scalar> Solution<'_, S> {
         let mut notes = Vec::new();
         let mut targets = Vec::new();
         let mut slots = Vec::new();
+        let start_states: Vec<usize> = start.iter().map(|(state, _)| *state).collect();
+        // In exact arithmetic a level equal to the limit of the distribution is reached at a
+        // finite step only if no mass can circulate for ever on the way.
+        let only_in_the_limit = |level: &S, limit: &S, goal: Option<usize>| {
+            S::EXACT
+                && level.at_least(limit)
+                && distribution::circulates(self.chain, self.structure, &start_states, goal)
+        };
         for (text, q) in &plan.quantiles {
             let q = S::from_rational(q);
-            if eventually.at_least(&q) {
+            if !eventually.at_least(&q) {
+                notes.push(format!(
+                    "quantile {text} is never reached: the walk is absorbed with probability {} \
+                     only",
+                    eventually.to_f64()
+                ));
+            } else if only_in_the_limit(&q, &eventually, None) {
+                notes.push(format!(
+                    "quantile {text} is approached only in the limit: no finite number of steps \
+                     reaches it"
+                ));
+            } else {
                 slots.push((text, None));
                 targets.push(distribution::QuantileTarget {
                     q: q.clone(),
                     outcome: None,
                     mass: S::one(),
                 });
-            } else {
-                notes.push(format!(
-                    "quantile {text} is never reached: the walk is absorbed with probability {} \
-                     only",
-                    eventually.to_f64()
-                ));
             }
             for (k, mass) in absorbed.iter().enumerate() {
-                if !mass.is_zero() {
+                let goal = Some(self.structure.absorbing[k]);
+                if !mass.is_zero() && !only_in_the_limit(&q, &S::one(), goal) {
                     slots.push((text, Some(k)));
                     targets.push(distribution::QuantileTarget {
                         q: q.clone(),
