@@ -226,6 +226,37 @@ struct Vectors<S> {
     costs: Vec<CostVectors<S>>,
 }
 
+impl<S: Scalar> Vectors<S> {
+    /// Outcome probabilities only (steps not reported).
+    fn outcomes_only(outcome: Vec<Vec<S>>) -> Self {
+        Vectors {
+            outcome,
+            steps: Vec::new(),
+            steps_twice: Vec::new(),
+            second_moment: Vec::new(),
+            steps_and_outcome: Vec::new(),
+            costs: Vec::new(),
+        }
+    }
+
+    /// Outcome probabilities and step statistics (costs are added after).
+    fn with_steps(
+        outcome: Vec<Vec<S>>,
+        steps: Vec<S>,
+        steps_twice: Vec<S>,
+        steps_and_outcome: Vec<Vec<S>>,
+    ) -> Self {
+        Vectors {
+            second_moment: second_moment(&steps_twice, &steps),
+            outcome,
+            steps,
+            steps_twice,
+            steps_and_outcome,
+            costs: Vec::new(),
+        }
+    }
+}
+
 /// Expected accumulated cost in one dimension, from each transient position.
 struct CostVectors<S> {
     /// `E[C]`.
@@ -283,23 +314,9 @@ fn run<S: Scalar>(
             .iter()
             .map(|b| solve(b.clone()))
             .collect::<Result<_, _>>()?;
-        Vectors {
-            second_moment: second_moment(&steps_twice, &steps),
-            outcome,
-            steps,
-            steps_twice,
-            steps_and_outcome,
-            costs: Vec::new(),
-        }
+        Vectors::with_steps(outcome, steps, steps_twice, steps_and_outcome)
     } else {
-        Vectors {
-            outcome,
-            steps: Vec::new(),
-            steps_twice: Vec::new(),
-            second_moment: Vec::new(),
-            steps_and_outcome: Vec::new(),
-            costs: Vec::new(),
-        }
+        Vectors::outcomes_only(outcome)
     };
     if plan.report.contains(&Report::Costs) {
         for dimension in &chain.costs {
@@ -327,15 +344,8 @@ fn run<S: Scalar>(
             .enumerate()
             .map(|(k, b)| d(b, Some(perturbation.dr(k))))
             .collect::<Result<_, _>>()?;
-        let vectors = if !wants_steps {
-            Vectors {
-                outcome,
-                steps: Vec::new(),
-                steps_twice: Vec::new(),
-                second_moment: Vec::new(),
-                steps_and_outcome: Vec::new(),
-                costs: Vec::new(),
-            }
+        let mut vectors = if !wants_steps {
+            Vectors::outcomes_only(outcome)
         } else {
             let steps = d(&at.steps, None)?;
             let steps_twice = d(&at.steps_twice, Some(&steps))?;
@@ -345,16 +355,8 @@ fn run<S: Scalar>(
                 .zip(&outcome)
                 .map(|(y, db)| d(y, Some(db)))
                 .collect::<Result<_, _>>()?;
-            Vectors {
-                second_moment: second_moment(&steps_twice, &steps),
-                outcome,
-                steps,
-                steps_twice,
-                steps_and_outcome,
-                costs: Vec::new(),
-            }
+            Vectors::with_steps(outcome, steps, steps_twice, steps_and_outcome)
         };
-        let mut vectors = vectors;
         if plan.report.contains(&Report::Costs) {
             let j = derivatives.len();
             for (dimension, values) in chain.costs.iter().zip(&at.costs) {
