@@ -185,6 +185,24 @@ pub struct TransitionSpec {
     pub cost: Option<Cost>,
 }
 
+/// Transitions column-wise: row `k` goes from `states[from[k]]` to `states[to[k]]` with
+/// `probability[k]` (or `weight[k]`).
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[cfg_attr(feature = "schema", derive(ToSchema))]
+#[serde(deny_unknown_fields)]
+pub struct TransitionTable {
+    /// Source state of each row, as an index into `states`.
+    pub from: Vec<usize>,
+    /// Target state of each row, as an index into `states`.
+    pub to: Vec<usize>,
+    /// Probability of each row (give this or `weight`).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub probability: Option<Vec<Value>>,
+    /// Weight of each row, normalised per source state (give this or `probability`).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub weight: Option<Vec<Value>>,
+}
+
 /// Where the walk starts: one state, or a distribution over states summing to 1.
 #[derive(Clone, Debug, PartialEq, Serialize)]
 #[cfg_attr(feature = "schema", derive(ToSchema))]
@@ -204,8 +222,13 @@ pub struct ChainSpec {
     /// Optional declarations; states are also declared by appearing in a transition.
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub states: Vec<StateSpec>,
-    /// The transitions. A state with none, or with only a self-loop, is absorbing.
+    /// The transitions. A state with none, or with only a self-loop, is absorbing. Give either
+    /// these or `table`.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub transitions: Vec<TransitionSpec>,
+    /// The transitions column-wise, for big models: indices into `states`.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub table: Option<TransitionTable>,
     /// Where the walk starts.
     pub start: StartSpec,
     /// Named parameters with their default values; any probability, weight, cost or start value

@@ -271,3 +271,61 @@ async fn float_keeps_the_escape_probability_of_a_self_loop_near_one() {
     assert_eq!(answer.metrics.absorption.unwrap()["z"].value, 1.0);
     assert!(answer.warnings.is_empty(), "{:?}", answer.warnings);
 }
+
+#[tokio::test]
+async fn the_columnar_table_gives_the_same_answer_as_the_transition_list() {
+    let app = spawn_app().await;
+    let listed = json!({
+        "transitions": [
+            {"from": "hall", "to": "treasure", "probability": "1/2"},
+            {"from": "hall", "to": "pit", "probability": "1/4"},
+            {"from": "hall", "to": "hall", "probability": 0.25},
+            {"from": "pit", "to": "hall", "weight": 1},
+            {"from": "pit", "to": "treasure", "weight": 3}
+        ],
+        "start": "hall"
+    });
+    let weights = json!({
+        "states": ["hall", "treasure", "pit"],
+        "table": {"from": [0, 0, 0], "to": [1, 2, 0], "probability": ["1/2", "1/4", 0.25]},
+        "start": "hall"
+    });
+    // The table holds one value kind, so `pit`'s weights become probabilities here.
+    let mut tabled = weights.clone();
+    tabled["table"]["from"] = json!([0, 0, 0, 2, 2]);
+    tabled["table"]["to"] = json!([1, 2, 0, 0, 1]);
+    tabled["table"]["probability"] = json!(["1/2", "1/4", 0.25, "1/4", "3/4"]);
+    let request = |chain: &serde_json::Value| json!({"chain": chain, "report": ["absorption", "steps", "visits"], "by_state": true});
+    let mut from_list = app.solve_ok(request(&listed)).await;
+    let mut from_table = app.solve_ok(request(&tabled)).await;
+    from_list.solver.elapsed_ms = 0.0;
+    from_table.solver.elapsed_ms = 0.0;
+    assert_eq!(from_list, from_table);
+    assert_eq!(
+        exact(&from_table.metrics.absorption.as_ref().unwrap()["treasure"]),
+        "1"
+    );
+
+    let mut broken = weights.clone();
+    broken["table"]["to"] = json!([1, 7, 0]);
+    let (status, _, problem) = app
+        .post_raw(
+            "/v1/solve",
+            "application/json",
+            serde_json::to_vec(&json!({"chain": broken})).unwrap(),
+        )
+        .await;
+    assert_eq!(status, 422);
+    assert_eq!(problem["errors"][0]["pointer"], "/chain/table/to/1");
+    let mut short = weights;
+    short["table"]["to"] = json!([1]);
+    let (status, _, problem) = app
+        .post_raw(
+            "/v1/solve",
+            "application/json",
+            serde_json::to_vec(&json!({"chain": short})).unwrap(),
+        )
+        .await;
+    assert_eq!(status, 422);
+    assert_eq!(problem["errors"][0]["pointer"], "/chain/table");
+}

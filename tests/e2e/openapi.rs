@@ -54,8 +54,9 @@ async fn the_document_is_openapi_3_1_with_the_contract_field_names() {
     );
     expect(
         "ChainSpec",
-        &["states", "transitions", "start", "parameters"],
+        &["states", "transitions", "table", "start", "parameters"],
     );
+    expect("TransitionTable", &["from", "to", "probability", "weight"]);
     expect("Derivative", &["derivative", "elasticity"]);
     expect(
         "Sensitivity",

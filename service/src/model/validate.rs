@@ -212,6 +212,117 @@ struct Row {
     weighted_costs: BTreeMap<usize, BTreeMap<String, Dual>>,
 }
 
+/// One transition, from the `transitions` list or a row of the `table`, with its location.
+struct TransitionInput<'a> {
+    from: &'a str,
+    to: &'a str,
+    probability: Option<&'a Value>,
+    weight: Option<&'a Value>,
+    cost: Option<&'a Cost>,
+    /// Pointer to the transition (a `transitions` entry, or the table's `from` cell).
+    at: String,
+    /// For a table row, its index into the value columns.
+    row: Option<usize>,
+}
+
+impl TransitionInput<'_> {
+    /// Pointer to the transition's value of this kind (`probability` or `weight`).
+    fn value_at(&self, kind: &str) -> String {
+        match self.row {
+            Some(k) => format!("/chain/table/{kind}/{k}"),
+            None => format!("{}/{kind}", self.at),
+        }
+    }
+}
+
+/// The transitions of either form, checking the table's shape and indices.
+fn transition_inputs<'a>(spec: &'a ChainSpec, issues: &mut Issues) -> Vec<TransitionInput<'a>> {
+    let Some(table) = &spec.table else {
+        return spec
+            .transitions
+            .iter()
+            .enumerate()
+            .map(|(k, t)| TransitionInput {
+                from: &t.from,
+                to: &t.to,
+                probability: t.probability.as_ref(),
+                weight: t.weight.as_ref(),
+                cost: t.cost.as_ref(),
+                at: format!("/chain/transitions/{k}"),
+                row: None,
+            })
+            .collect();
+    };
+    if !spec.transitions.is_empty() {
+        issues.add(
+            "/chain/table",
+            "give either `transitions` or `table`, not both",
+        );
+        return Vec::new();
+    }
+    let rows = table.from.len();
+    let values = match (&table.probability, &table.weight) {
+        (Some(p), None) => p.len(),
+        (None, Some(w)) => w.len(),
+        _ => {
+            issues.add(
+                "/chain/table",
+                "give exactly one of `probability` or `weight` columns",
+            );
+            return Vec::new();
+        }
+    };
+    if table.to.len() != rows || values != rows {
+        issues.add(
+            "/chain/table",
+            format!(
+                "the columns must have one entry per row: `from` has {rows}, `to` has {}, the \
+                 values have {values}",
+                table.to.len()
+            ),
+        );
+        return Vec::new();
+    }
+    let ids: Vec<&str> = spec
+        .states
+        .iter()
+        .map(|s| match s {
+            StateSpec::Id(id) => id.as_str(),
+            StateSpec::Detailed(d) => d.id.as_str(),
+        })
+        .collect();
+    let mut inputs = Vec::with_capacity(rows);
+    for k in 0..rows {
+        let mut state = |column: &str, index: usize| match ids.get(index) {
+            Some(id) => Some(*id),
+            None => {
+                issues.add(
+                    format!("/chain/table/{column}/{k}"),
+                    format!(
+                        "state index {index} is out of range: `states` has {}",
+                        ids.len()
+                    ),
+                );
+                None
+            }
+        };
+        let (Some(from), Some(to)) = (state("from", table.from[k]), state("to", table.to[k]))
+        else {
+            continue;
+        };
+        inputs.push(TransitionInput {
+            from,
+            to,
+            probability: table.probability.as_ref().map(|p| &p[k]),
+            weight: table.weight.as_ref().map(|w| &w[k]),
+            cost: None,
+            at: format!("/chain/table/from/{k}"),
+            row: Some(k),
+        });
+    }
+    inputs
+}
+
 /// Validates a chain description at its parameters' values, with `overrides` (the request's
 /// `parameters`) replacing the chain's defaults.
 ///
@@ -265,26 +376,27 @@ pub fn validate(
 
     // Transitions, grouped by source state.
     let mut rows: HashMap<usize, Row> = HashMap::new();
-    for (k, t) in spec.transitions.iter().enumerate() {
-        let at = format!("/chain/transitions/{k}");
-        for (field, id) in [("from", &t.from), ("to", &t.to)] {
+    let inputs = transition_inputs(spec, &mut issues);
+    for (k, t) in inputs.iter().enumerate() {
+        let at = t.at.clone();
+        for (field, id) in [("from", t.from), ("to", t.to)] {
             if id.is_empty() {
                 issues.add(format!("{at}/{field}"), "a state id must not be empty");
             }
         }
-        let transition_cost = issues.costs(t.cost.as_ref(), &at);
+        let transition_cost = issues.costs(t.cost, &at);
         if t.from.is_empty() || t.to.is_empty() {
             continue;
         }
-        let from = intern(&t.from, &mut ids);
-        let to = intern(&t.to, &mut ids);
-        let (kind, value) = match (&t.probability, &t.weight) {
+        let from = intern(t.from, &mut ids);
+        let to = intern(t.to, &mut ids);
+        let (kind, value) = match (t.probability, t.weight) {
             (Some(p), None) => (
                 RowKind::Probability,
-                issues.probability(p, format!("{at}/probability")),
+                issues.probability(p, t.value_at("probability")),
             ),
             (None, Some(w)) => {
-                let weight = issues.value(w, format!("{at}/weight"));
+                let weight = issues.value(w, t.value_at("weight"));
                 let weight = weight.filter(|w| {
                     let ok = !w.value.is_negative();
                     if !ok {
@@ -293,7 +405,7 @@ pub fn validate(
                             exact_text(&w.value),
                             issues.at_values()
                         );
-                        issues.add(format!("{at}/weight"), detail);
+                        issues.add(t.value_at("weight"), detail);
                     }
                     ok
                 });
@@ -311,10 +423,11 @@ pub fn validate(
                 issues.add(
                     at.clone(),
                     format!(
-                        "transitions out of '{}' mix {} (first at /chain/transitions/{first_at}) \
+                        "transitions out of '{}' mix {} (first at {}) \
                          and {}; use one kind per state",
                         t.from,
                         first.name(),
+                        inputs[first_at].at,
                         kind.name()
                     ),
                 );
@@ -389,7 +502,7 @@ pub fn validate(
         for (value, _) in row.targets.values() {
             total.add_assign(value);
         }
-        let row_at = format!("/chain/transitions/{first_at}");
+        let row_at = inputs[first_at].at.clone();
         let sources = || {
             let mut all: Vec<usize> = row.targets.values().flat_map(|(_, s)| s.clone()).collect();
             all.sort_unstable();
