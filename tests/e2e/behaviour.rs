@@ -199,10 +199,11 @@ async fn auto_answers_in_float_when_exact_is_predicted_to_overrun_and_exact_when
     let app = spawn_app_with(|s| s.solve_budget_ms = 2_000).await;
     let answer = app.solve_ok(json!({"chain": dense_chain(200)})).await;
     assert_eq!(answer.arithmetic, UsedArithmetic::Float);
+    // No exact attempt was made and abandoned: that would leave a fallback warning.
     assert!(
-        answer.solver.elapsed_ms < 1_000.0,
-        "{}",
-        answer.solver.elapsed_ms
+        !answer.warnings.iter().any(|w| w.contains("did not finish")),
+        "{:?}",
+        answer.warnings
     );
     let small = app.solve_ok(json!({"chain": dense_chain(5)})).await;
     assert_eq!(small.arithmetic, UsedArithmetic::Exact);
