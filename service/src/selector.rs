@@ -10,6 +10,7 @@ use oddsmith_client::types::{Metric, MetricSelector, Number, Report, SolveRespon
 use crate::model::chain::Chain;
 use crate::model::validate::Issue;
 use crate::model::value::parse_exact;
+use crate::solve::MAX_HORIZON;
 
 /// A selector checked against a chain.
 #[derive(Clone, Debug)]
@@ -48,11 +49,16 @@ impl Selector {
                 if let Some(outcome) = &wire.outcome {
                     check_state(chain, outcome, true, &format!("{at}/outcome"), &mut issues);
                 }
-                if wire.steps.is_none() {
-                    issues.push(Issue {
+                match wire.steps {
+                    None => issues.push(Issue {
                         pointer: at.to_owned(),
                         detail: "`within` needs `steps`".into(),
-                    });
+                    }),
+                    Some(steps) if steps > MAX_HORIZON => issues.push(Issue {
+                        pointer: format!("{at}/steps"),
+                        detail: format!("`steps` may be at most {MAX_HORIZON}"),
+                    }),
+                    Some(_) => {}
                 }
             }
             Metric::StepsQuantile => match wire.q.as_ref().map(|q| parse_exact(&q.text())) {

@@ -16,10 +16,13 @@ use crate::model::chain::Chain;
 use crate::model::validate::{validate, Issue};
 use crate::model::value::{exact_text, parse_exact, to_f64};
 use crate::solve::budget::Budget;
-use crate::solve::{solve, Plan, SolveError, MAX_HORIZON};
+use crate::solve::{reported_numbers, solve, Plan, SolveError, MAX_HORIZON, MAX_REPORTED_NUMBERS};
 
 /// Most points one sweep may have.
 pub const MAX_SWEEP_POINTS: usize = 10_000;
+
+/// Most quantile levels one request may ask for.
+pub const MAX_QUANTILES: usize = 100;
 
 /// Most axes of a sweep grid.
 pub const MAX_SWEEP_AXES: usize = 3;
@@ -56,7 +59,8 @@ pub fn answer(request: &SolveRequest, budget: &Budget) -> Result<SolveAnswer, Re
     if request.report.is_empty() {
         return Err(invalid(
             "/report",
-            "list at least one of \"absorption\", \"steps\", \"visits\", \"sensitivity\"",
+            "list at least one of \"absorption\", \"steps\", \"visits\", \"distribution\", \
+             \"costs\", \"sensitivity\"",
         ));
     }
     let plan = plan(request)?;
@@ -65,6 +69,15 @@ pub fn answer(request: &SolveRequest, budget: &Budget) -> Result<SolveAnswer, Re
         return Ok(SolveAnswer::Single(Box::new(solve(&chain, &plan, budget)?)));
     };
     let grid = sweep_points(sweep.axes(), &chain, matches!(sweep, Sweep::Grid(_)))?;
+    let total = reported_numbers(&chain, &plan).saturating_mul(grid.len());
+    if total > MAX_REPORTED_NUMBERS {
+        return Err(SolveError::TooLarge(format!(
+            "the sweep's {} answers would hold about {total} numbers, over the limit of \
+             {MAX_REPORTED_NUMBERS}; sweep fewer points or report less",
+            grid.len()
+        ))
+        .into());
+    }
     let points: Vec<SweepPoint> = grid
         .into_par_iter()
         .map(|point| {
@@ -73,7 +86,20 @@ pub fn answer(request: &SolveRequest, budget: &Budget) -> Result<SolveAnswer, Re
             for (name, value) in &point {
                 overrides.insert(name.clone(), Value::Text(exact_text(value)));
             }
-            let chain = validate(&request.chain, &overrides)?;
+            let chain = validate(&request.chain, &overrides).map_err(|issues| {
+                // Name the sweep point: the same chain is valid elsewhere.
+                let at: Vec<String> = point
+                    .iter()
+                    .map(|(name, value)| format!("{name} = {}", exact_text(value)))
+                    .collect();
+                issues
+                    .into_iter()
+                    .map(|issue| Issue {
+                        detail: format!("at the sweep point {}: {}", at.join(", "), issue.detail),
+                        ..issue
+                    })
+                    .collect::<Vec<_>>()
+            })?;
             let answer = solve(&chain, &plan, budget)?;
             let exact = answer.arithmetic == UsedArithmetic::Exact;
             let parameters = point
@@ -109,11 +135,19 @@ fn plan(request: &SolveRequest) -> Result<Plan, RequestError> {
         }
         plan.horizon = Some(horizon);
     }
-    for (i, q) in request.quantiles.iter().enumerate() {
+    if request.quantiles.len() > MAX_QUANTILES {
+        issues.push(Issue {
+            pointer: "/quantiles".into(),
+            detail: format!("ask for at most {MAX_QUANTILES} quantiles"),
+        });
+    }
+    for (i, q) in request.quantiles.iter().enumerate().take(MAX_QUANTILES) {
         let text = q.text();
         match parse_exact(&text) {
             Ok(level) if level.is_positive() && level <= BigRational::one() => {
-                plan.quantiles.push((text, level));
+                if !plan.quantiles.iter().any(|(t, _)| *t == text) {
+                    plan.quantiles.push((text, level));
+                }
             }
             Ok(_) => issues.push(Issue {
                 pointer: format!("/quantiles/{i}"),

@@ -30,6 +30,10 @@ pub const MAX_EXACT_DENOMINATOR: i64 = 1_000_000;
 /// One evaluation of the metric.
 struct Point {
     theta: f64,
+    /// The exact parameter value evaluated.
+    exact_theta: BigRational,
+    /// The metric equals the target exactly (exact arithmetic only).
+    hit: bool,
     /// Metric minus target.
     gap: f64,
     metric: Number,
@@ -86,8 +90,15 @@ impl Problem<'_> {
             Some(Ok(exact)) => to_f64(&(exact - &self.target)),
             _ => metric.value - to_f64(&self.target),
         };
+        let hit = metric
+            .exact
+            .as_deref()
+            .and_then(|e| parse_exact(e).ok())
+            .is_some_and(|m| m == self.target);
         Ok(Point {
             theta: to_f64(theta),
+            exact_theta: theta.clone(),
+            hit,
             gap,
             derivative: reading.derivative.map(|d| d.value),
             exact: answer.arithmetic == UsedArithmetic::Exact,
@@ -285,9 +296,8 @@ fn finish(
     };
     let mut achieved = point.metric.clone();
     if point.exact {
-        let exact_theta = BigRational::from_float(point.theta);
-        if point.gap == 0.0 && exact_theta.as_ref().is_some_and(|t| t.denom().bits() <= 64) {
-            value.exact = exact_theta.map(|t| exact_text(&t));
+        if point.hit {
+            value.exact = Some(exact_text(&point.exact_theta));
         } else {
             for candidate in convergents(point.theta, MAX_EXACT_DENOMINATOR)
                 .into_iter()

@@ -338,3 +338,45 @@ async fn an_answer_too_large_to_send_is_refused_up_front() {
         .ends_with("answer-too-large"));
     assert!(started.elapsed() < Duration::from_secs(5));
 }
+
+#[tokio::test]
+async fn runaway_numbers_and_oversized_requests_are_refused_promptly() {
+    let app = spawn_app().await;
+    let started = Instant::now();
+    // A 70-byte power that would hold billions of digits.
+    let answer = post_json(&app, &json!({"chain": {"transitions": [{"from": "a", "to": "b", "weight": "((3^999)^126)^1000"}], "start": "a"}})).await;
+    assert_problem(&answer, 422);
+    assert_eq!(pointers(&answer.2), ["/chain/transitions/0/weight"]);
+    // A `within` horizon beyond the limit, in tuning.
+    let tune = json!({
+        "chain": {"parameters": {"drop": "1/40"}, "transitions": [
+            {"from": "chest", "to": "sword", "probability": "drop"},
+            {"from": "chest", "to": "chest", "probability": "1 - drop"}], "start": "chest"},
+        "parameter": "drop", "range": ["0.01", "0.2"],
+        "target": {"metric": "within", "steps": u64::MAX, "outcome": "sword", "equals": "0.5"}
+    });
+    let answer = app
+        .post_raw("/v1/tune", JSON, serde_json::to_vec(&tune).unwrap())
+        .await;
+    assert_problem(&answer, 422);
+    assert_eq!(pointers(&answer.2), ["/target/steps"]);
+    // A sweep whose answers together would be too large.
+    let sweep = json!({
+        "chain": {"parameters": {"drop": "1/40"}, "transitions": [
+            {"from": "chest", "to": "sword", "probability": "drop"},
+            {"from": "chest", "to": "chest", "probability": "1 - drop"}], "start": "chest"},
+        "report": ["distribution"], "horizon": 999_999,
+        "sweep": {"parameter": "drop", "from": "0.01", "to": "0.02", "count": 10}
+    });
+    let answer = post_json(&app, &sweep).await;
+    assert_problem(&answer, 422);
+    assert!(answer.2["type"]
+        .as_str()
+        .unwrap()
+        .ends_with("answer-too-large"));
+    assert!(
+        started.elapsed() < Duration::from_secs(10),
+        "{:?}",
+        started.elapsed()
+    );
+}

@@ -352,3 +352,31 @@ async fn parameter_mistakes_are_422_with_pointers_columns_and_values() {
     assert_eq!(status, 422);
     assert_eq!(problem["errors"][0]["pointer"], "/sweep/parameter");
 }
+
+#[tokio::test]
+async fn a_sampled_exact_hit_is_reported_as_that_exact_value() {
+    // absorption = drop hits 1/24 exactly; no rounding of the sample may leak into `exact`.
+    let app = spawn_app().await;
+    let request: TuneRequest = serde_json::from_value(json!({
+        "chain": chest("1/40"), "parameter": "drop", "range": ["0", "1/3"],
+        "target": {"metric": "steps_mean", "equals": "24"}
+    }))
+    .unwrap();
+    let tuned = app.client.tune(&request).await.unwrap();
+    assert_eq!(tuned.value.exact.as_deref(), Some("1/24"));
+    assert_eq!(tuned.achieved.exact.as_deref(), Some("24"));
+}
+
+#[tokio::test]
+async fn long_expressions_are_expressions_not_overlong_numerals() {
+    let app = spawn_app().await;
+    let mut chain = chest("1/40");
+    // 1 - drop written as 1 - (drop + 0*drop + 0*drop + ...), over 400 characters.
+    let padding = " + 0*drop".repeat(60);
+    chain["transitions"][1]["probability"] = json!(format!("1 - (drop{padding})"));
+    let answer = app.solve_ok(json!({"chain": chain})).await;
+    assert_eq!(
+        exact(answer.metrics.steps.unwrap().mean.as_ref().unwrap()),
+        "40"
+    );
+}

@@ -241,3 +241,18 @@ async fn tuning_finds_the_drop_rate_that_gives_99_percent_the_sword_by_the_90th_
     );
     assert!((tuned.achieved.value - 0.99).abs() < 1e-12);
 }
+
+#[tokio::test]
+async fn merged_pairs_with_different_costs_keep_their_spread() {
+    // Half the time 0 gold, half the time 10: mean 5, variance 25.
+    let app = spawn_app().await;
+    let answer = app
+        .solve_ok(json!({"chain": {"transitions": [
+            {"from": "chest", "to": "done", "probability": "1/2", "cost": {"gold": 0}},
+            {"from": "chest", "to": "done", "probability": "1/2", "cost": {"gold": 10}}
+        ], "start": "chest"}, "report": ["costs"]}))
+        .await;
+    let gold = &answer.metrics.costs.unwrap()["gold"];
+    assert_eq!(exact(gold.mean.as_ref().unwrap()), "5");
+    assert_eq!(exact(gold.variance.as_ref().unwrap()), "25");
+}

@@ -16,8 +16,9 @@ Written from the definitions, sharing no code with the service:
   E[X_i^2] and E[X_i 1{ends in a}], solved exactly with sympy
   (:func:`cost_reference`).
 
-Repeated (from, to) pairs: probabilities are summed and the pair's cost is the
-probability-weighted average of the copies' costs (the wire contract's rule).
+Repeated (from, to) pairs: probabilities are summed and the pair's mean cost is the
+probability-weighted average of the copies' costs; the walk still takes one copy at a time,
+so the spread of the copies' costs adds to the second moment (see :func:`parse_cost_spreads`).
 
 :func:`random_costed_chain` writes seeded random chains with 2-7 states, some
 closed classes that trap the walk, starts that are a state or a distribution,
@@ -414,7 +415,29 @@ def parse_costs(body_text: str, chain: Chain) -> tuple[list[str], dict, dict]:
     return dims, states_c, edges_c
 
 
-def _moments(chain: Chain, st, h: dict, c: dict, e: dict) -> dict:
+def parse_cost_spreads(body_text: str, chain: Chain) -> dict:
+    """``{dim: {(s, t): Var}}``: the variance of a repeated pair's cost over its copies,
+    weighted by probability (zero for a pair given once)."""
+    body = json.loads(body_text, parse_float=str)
+    copies: dict[tuple[str, str], list[tuple[Rational, dict]]] = {}
+    for tr in body["chain"]["transitions"]:
+        kind = "probability" if "probability" in tr else "weight"
+        cost = {d: parse_value(v) for d, v in tr.get("cost", {}).items()}
+        copies.setdefault((tr["from"], tr["to"]), []).append((parse_value(tr[kind]), cost))
+    spreads: dict[str, dict] = {}
+    for pair, items in copies.items():
+        total = sum((w for w, _ in items), ZERO)
+        if total == 0:
+            continue
+        dims = {d for _, c in items for d in c}
+        for d in dims:
+            mean = sum((w * c.get(d, ZERO) for w, c in items), ZERO) / total
+            square = sum((w * c.get(d, ZERO) ** 2 for w, c in items), ZERO) / total
+            spreads.setdefault(d, {})[pair] = square - mean**2
+    return spreads
+
+
+def _moments(chain: Chain, st, h: dict, c: dict, e: dict, spread: dict | None = None) -> dict:
     """Per state: m (E[X], None when trappable), s (E[X^2]), g[a] (E[X 1{a}])."""
     A = chain.absorbing_list
     C = set(st.recurrent)
@@ -443,8 +466,10 @@ def _moments(chain: Chain, st, h: dict, c: dict, e: dict) -> dict:
     # m_i = sum_j P_ij (c_i + e_ij) + sum_{j in U} P_ij m_j + sum_{j absorbing} P_ij m_j
     m.update(solve(finite, lambda i: sum((p * step_cost(i, j) for j, p in chain.rows[i].items()), ZERO)
                    + outside(i, lambda j: m[j], inside)))
-    # s_i = sum_j P_ij [(c_i + e_ij)^2 + 2 (c_i + e_ij) m_j + s_j]
-    s.update(solve(finite, lambda i: sum((p * (step_cost(i, j) ** 2 + 2 * step_cost(i, j) * m[j])
+    spread = spread or {}
+    # s_i = sum_j P_ij [(c_i + e_ij)^2 + Var(e_ij) + 2 (c_i + e_ij) m_j + s_j]
+    s.update(solve(finite, lambda i: sum((p * (step_cost(i, j) ** 2 + spread.get((i, j), ZERO)
+                                               + 2 * step_cost(i, j) * m[j])
                                           for j, p in chain.rows[i].items() if p != 0), ZERO)
                    + outside(i, lambda j: s[j], inside)))
     for u in chain.non_absorbing:
@@ -475,6 +500,7 @@ def cost_reference(body_text: str, chain: Chain | None = None, absolute: bool = 
     st = structure(chain)
     h = _absorption(chain, st)
     dims, states_c, edges_c = parse_costs(body_text, chain)
+    spreads = parse_cost_spreads(body_text, chain)
     support = [(s, w) for s, w in chain.start.items() if w != 0]
     out = {}
     for d in dims:
@@ -482,7 +508,7 @@ def cost_reference(body_text: str, chain: Chain | None = None, absolute: bool = 
         if absolute:
             c = {k: abs(v) for k, v in c.items()}
             e = {k: abs(v) for k, v in e.items()}
-        mom = _moments(chain, st, h, c, e)
+        mom = _moments(chain, st, h, c, e, spreads.get(d, {}))
         if any(mom["m"][s] is None for s, _ in support):
             mean = variance = None
         else:

@@ -604,7 +604,8 @@ def test_cost_starting_on_an_absorbing_state(service):
 
 
 def test_repeated_pair_cost_is_probability_weighted(service):
-    """Two copies of (a, won) with 1/4 at cost 8 and 1/2 at cost 2 act as one 3/4 edge costing 4."""
+    """Two copies of (a, won) with 1/4 at cost 8 and 1/2 at cost 2: one 3/4 edge costing 4 on
+    average, but 8 or 2 each time (1/3 and 2/3 of the time), so the variance is 24 - 16 = 8."""
     chain = {"transitions": [
         {"from": "a", "to": "won", "probability": "1/4", "cost": {"gold": 8}},
         {"from": "a", "to": "won", "probability": "1/2", "cost": {"gold": 2}},
@@ -613,8 +614,9 @@ def test_repeated_pair_cost_is_probability_weighted(service):
     text = _body(chain, "exact", ["costs"])
     got = service.solve(text)["costs"]["gold"]
     assert _exact(got["mean"]) == 4
-    assert _exact(got["variance"]) == 0
+    assert _exact(got["variance"]) == 8
     assert cost_reference(text)["gold"]["mean"] == 4
+    assert cost_reference(text)["gold"]["variance"] == 8
 
 
 # --------------------------------------------------------------------------

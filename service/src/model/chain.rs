@@ -47,6 +47,11 @@ pub struct CostDimension {
     pub on_transitions: Vec<BigRational>,
     /// Gradient of each transition's cost with respect to each parameter.
     pub on_transitions_gradient: Vec<Vec<BigRational>>,
+    /// Variance of each transition's cost: nonzero only where repeated `(from, to)` pairs with
+    /// different costs were merged (the cost is then random given the transition).
+    pub on_transitions_spread: Vec<BigRational>,
+    /// Gradient of that variance with respect to each parameter.
+    pub on_transitions_spread_gradient: Vec<Vec<BigRational>>,
 }
 
 impl Chain {

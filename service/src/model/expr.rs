@@ -401,6 +401,11 @@ impl Expr {
                 if *k == 0 {
                     Dual::constant(BigRational::one(), n)
                 } else {
+                    // Refuse before computing: the power has about |k| times the base's bits.
+                    let bits = a.value.numer().bits().max(a.value.denom().bits());
+                    if bits.saturating_mul(k.unsigned_abs()) > MAX_BITS {
+                        return error(0, "a power produces a number too large to carry on with");
+                    }
                     // d(a^k) = k a^(k-1) da
                     let below = pow(&a.value, k - 1);
                     if too_big(&below) {

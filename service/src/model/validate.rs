@@ -68,7 +68,9 @@ impl Issues {
             Value::Text(text) => match parse_exact(text) {
                 Ok(v) => Ok(Dual::constant(v, parameters)),
                 // A numeral that is out of bounds says so; anything else may be an expression.
-                Err(detail) if !detail.contains("is not a number") => Err(detail),
+                Err(detail) if looks_numeric(text) && !detail.contains("is not a number") => {
+                    Err(detail)
+                }
                 Err(_) => parse(text, &self.names)
                     .and_then(|e| e.evaluate(&self.values))
                     .map_err(|e| {
@@ -171,10 +173,16 @@ impl Issues {
     }
 }
 
+/// Text made only of what numerals are made of (digits, sign, point, exponent, `/`, `%`).
+fn looks_numeric(text: &str) -> bool {
+    text.chars()
+        .all(|c| c.is_ascii_digit() || " +-.eE/%".contains(c))
+}
+
 /// A parameter's value: a number, or an expression of numbers alone such as `"1/4 + 1/8"`.
 fn constant(text: &str) -> Result<BigRational, String> {
     parse_exact(text).or_else(|numeral| {
-        if !numeral.contains("is not a number") {
+        if looks_numeric(text) && !numeral.contains("is not a number") {
             return Err(numeral);
         }
         parse(text, &[])
@@ -209,7 +217,8 @@ struct Row {
     targets: BTreeMap<usize, (Dual, Vec<usize>)>,
     /// Target -> cost dimension -> Σ value × cost over the transitions to that target (repeated
     /// pairs with different costs average them, weighted by their probabilities).
-    weighted_costs: BTreeMap<usize, BTreeMap<String, Dual>>,
+    /// (Σ value × cost, Σ value × cost²) per target and dimension.
+    weighted_costs: BTreeMap<usize, BTreeMap<String, (Dual, Dual)>>,
 }
 
 /// One transition, from the `transitions` list or a row of the `table`, with its location.
@@ -451,10 +460,11 @@ pub fn validate(
             entry.1.push(k);
             let costs = row.weighted_costs.entry(to).or_default();
             for (dimension, amount) in transition_cost {
-                costs
-                    .entry(dimension)
-                    .or_insert_with(|| Dual::constant(BigRational::zero(), parameter_count))
-                    .add_assign(&value.mul(&amount));
+                let zero = || Dual::constant(BigRational::zero(), parameter_count);
+                let (sum, squares) = costs.entry(dimension).or_insert_with(|| (zero(), zero()));
+                let weighted = value.mul(&amount);
+                squares.add_assign(&weighted.mul(&amount));
+                sum.add_assign(&weighted);
             }
         }
     }
@@ -474,7 +484,8 @@ pub fn validate(
     let mut targets = Vec::new();
     let mut probabilities = Vec::new();
     let mut gradients = Vec::new();
-    let mut weighted_costs: Vec<BTreeMap<String, Dual>> = Vec::new();
+    // Per transition and dimension: (mean cost, variance of the cost) over merged pairs.
+    let mut weighted_costs: Vec<BTreeMap<String, (Dual, Dual)>> = Vec::new();
     for (state, id) in ids.iter().enumerate() {
         row_start.push(targets.len());
         let Some(row) = rows.remove(&state) else {
@@ -563,6 +574,20 @@ pub fn validate(
                 ),
             );
         }
+        let vanishing: Vec<String> = row
+            .targets
+            .iter()
+            .filter(|(_, (v, _))| v.value.is_zero() && v.gradient.iter().any(|g| !g.is_zero()))
+            .map(|(&target, _)| format!("'{}'", ids[target]))
+            .collect();
+        if !vanishing.is_empty() {
+            warnings.push(format!(
+                "from '{id}', the transitions to {} have probability 0 at these parameter values \
+                 but change with them; sensitivities treat them as absent, so derivatives here \
+                 are one-sided",
+                vanishing.join(", ")
+            ));
+        }
         let mut row_costs = row.weighted_costs;
         for (target, (value, _)) in row.targets {
             if !value.value.is_zero() {
@@ -571,7 +596,15 @@ pub fn validate(
                 weighted_costs.push(
                     costs
                         .into_iter()
-                        .map(|(dimension, sum)| (dimension, sum.ratio(&value)))
+                        .map(|(dimension, (sum, squares))| {
+                            let mean = sum.ratio(&value);
+                            let square = squares.ratio(&value);
+                            let mut spread = mean.mul(&mean);
+                            spread.value = -spread.value;
+                            spread.gradient.iter_mut().for_each(|g| *g = -g.clone());
+                            spread.add_assign(&square);
+                            (dimension, (mean, spread))
+                        })
                         .collect(),
                 );
                 targets.push(target);
@@ -603,21 +636,28 @@ pub fn validate(
                     on_states[*state] = amount.clone();
                 }
             }
-            let on_transitions: Vec<Dual> = weighted_costs
+            let (on_transitions, spread): (Vec<Dual>, Vec<Dual>) = weighted_costs
                 .iter()
-                .map(|c| c.get(&dimension).cloned().unwrap_or_else(|| zero.clone()))
-                .collect();
+                .map(|c| {
+                    c.get(&dimension)
+                        .cloned()
+                        .unwrap_or_else(|| (zero.clone(), zero.clone()))
+                })
+                .unzip();
             let split = |duals: Vec<Dual>| -> (Vec<BigRational>, Vec<Vec<BigRational>>) {
                 duals.into_iter().map(|d| (d.value, d.gradient)).unzip()
             };
             let (on_states, on_states_gradient) = split(on_states);
             let (on_transitions, on_transitions_gradient) = split(on_transitions);
+            let (on_transitions_spread, on_transitions_spread_gradient) = split(spread);
             CostDimension {
                 name: dimension,
                 on_states,
                 on_states_gradient,
                 on_transitions,
                 on_transitions_gradient,
+                on_transitions_spread,
+                on_transitions_spread_gradient,
             }
         })
         .collect();

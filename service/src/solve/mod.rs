@@ -141,7 +141,16 @@ fn check_size(chain: &Chain, structure: &Structure, plan: &Plan) -> Result<(), S
     } else {
         1
     };
-    let solution = n.saturating_mul(outcomes).saturating_mul(copies);
+    // Sensitivities keep one more set of vectors per parameter.
+    let sets = if plan.report.contains(&Report::Sensitivity) {
+        1 + chain.parameters.len()
+    } else {
+        1
+    };
+    let solution = n
+        .saturating_mul(outcomes)
+        .saturating_mul(copies)
+        .saturating_mul(sets);
     if solution > MAX_SOLUTION_NUMBERS {
         return Err(SolveError::TooLarge(format!(
             "{n} transient states and {outcomes} outcomes need {solution} intermediate numbers, \
@@ -149,6 +158,20 @@ fn check_size(chain: &Chain, structure: &Structure, plan: &Plan) -> Result<(), S
              outcome"
         )));
     }
+    let (per_start, starts) = answer_shape(chain, structure, plan);
+    let reported = per_start.saturating_mul(starts);
+    check_reported(reported, per_start, starts)
+}
+
+/// How many numbers an answer will hold, estimated before solving.
+#[must_use]
+pub fn reported_numbers(chain: &Chain, plan: &Plan) -> usize {
+    let (per_start, starts) = answer_shape(chain, &Structure::of(chain), plan);
+    per_start.saturating_mul(starts)
+}
+
+/// Numbers reported from each start, and the number of starts.
+fn answer_shape(chain: &Chain, structure: &Structure, plan: &Plan) -> (usize, usize) {
     let per_start = plan
         .report
         .iter()
@@ -156,9 +179,9 @@ fn check_size(chain: &Chain, structure: &Structure, plan: &Plan) -> Result<(), S
             Report::Absorption => structure.absorbing.len() + 1,
             Report::Steps => structure.absorbing.len() + 2,
             Report::Visits => chain.len() - structure.absorbing.len(),
-            Report::Distribution => {
-                (plan.horizon.unwrap_or(1_000) as usize + 1) * (structure.absorbing.len() + 1)
-            }
+            Report::Distribution => (plan.horizon.unwrap_or(1_000) as usize)
+                .saturating_add(1)
+                .saturating_mul(structure.absorbing.len() + 1),
             Report::Costs => chain.costs.len() * (structure.absorbing.len() + 2),
             // Sensitivities repeat the other metrics once per parameter (counted below).
             Report::Sensitivity => 0,
@@ -174,7 +197,10 @@ fn check_size(chain: &Chain, structure: &Structure, plan: &Plan) -> Result<(), S
     } else {
         1
     };
-    let reported = per_start.saturating_mul(starts);
+    (per_start, starts)
+}
+
+fn check_reported(reported: usize, per_start: usize, starts: usize) -> Result<(), SolveError> {
     if reported > MAX_REPORTED_NUMBERS {
         return Err(SolveError::TooLarge(format!(
             "the answer would hold {reported} numbers ({per_start} from each of {starts} starts), \
@@ -580,8 +606,9 @@ fn cost_vectors<S: Scalar>(
 ) -> Result<CostVectors<S>, SolveError> {
     let n = structure.transient.len();
     let absorbing_count = structure.absorbing.len();
-    // (probability, step cost, target) for every transition out of every transient state.
-    let steps: Vec<Vec<(S, S, usize)>> = structure
+    // (probability, mean step cost, target, variance of the step cost) for every transition out
+    // of every transient state.
+    let steps: Vec<Vec<(S, S, usize, S)>> = structure
         .transient
         .iter()
         .map(|&i| {
@@ -593,17 +620,19 @@ fn cost_vectors<S: Scalar>(
                     if structure.kind[j] == StateKind::Absorbing {
                         cost = cost.add(&S::from_rational(&dimension.on_states[j]));
                     }
-                    (S::from_rational(&chain.probabilities[t]), cost, j)
+                    let spread = S::from_rational(&dimension.on_transitions_spread[t]);
+                    (S::from_rational(&chain.probabilities[t]), cost, j, spread)
                 })
                 .collect()
         })
         .collect();
-    let expected = |weight: &dyn Fn(&S, usize) -> S| -> Vec<S> {
+    let expected = |weight: &dyn Fn(&S, usize, &S) -> S| -> Vec<S> {
         steps
             .iter()
             .map(|row| {
-                row.iter()
-                    .fold(S::zero(), |sum, (p, a, j)| sum.add(&p.mul(&weight(a, *j))))
+                row.iter().fold(S::zero(), |sum, (p, a, j, spread)| {
+                    sum.add(&p.mul(&weight(a, *j, spread)))
+                })
             })
             .collect()
     };
@@ -611,14 +640,17 @@ fn cost_vectors<S: Scalar>(
         Some(q) => values[q].clone(),
         None => S::zero(),
     };
-    let mean = solve(expected(&|a, _| a.clone()))?;
-    let second_moment = solve(expected(&|a, j| {
-        a.mul(a).add(&a.add(a).mul(&at_position(&mean, j)))
+    let mean = solve(expected(&|a, _, _| a.clone()))?;
+    // E[a²] = a² + Var(a) where merged pairs made the step cost random.
+    let second_moment = solve(expected(&|a, j, spread| {
+        a.mul(a)
+            .add(spread)
+            .add(&a.add(a).mul(&at_position(&mean, j)))
     }))?;
     let joint = (0..absorbing_count)
         .map(|k| {
             let goal = structure.absorbing[k];
-            solve(expected(&|a, j| {
+            solve(expected(&|a, j, _| {
                 let h = if j == goal {
                     S::one()
                 } else {
@@ -656,6 +688,8 @@ fn cost_derivatives<S: Scalar>(
         dp: S,
         a: S,
         da: S,
+        spread: S,
+        d_spread: S,
         target: usize,
     }
     let steps: Vec<Vec<Step<S>>> = structure
@@ -682,6 +716,10 @@ fn cost_derivatives<S: Scalar>(
                         dp: S::from_rational(&chain.gradients[t][parameter]),
                         a,
                         da,
+                        spread: S::from_rational(&dimension.on_transitions_spread[t]),
+                        d_spread: S::from_rational(
+                            &dimension.on_transitions_spread_gradient[t][parameter],
+                        ),
                         target: j,
                     }
                 })
@@ -712,9 +750,12 @@ fn cost_derivatives<S: Scalar>(
             let dm = at(&mean, s.target);
             let value =
                 s.a.mul(&s.a)
+                    .add(&s.spread)
                     .add(&two.mul(&s.a).mul(&m))
                     .add(&at(&values.second_moment, s.target));
-            let change = two.mul(&s.a.mul(&s.da).add(&s.da.mul(&m)).add(&s.a.mul(&dm)));
+            let change = two
+                .mul(&s.a.mul(&s.da).add(&s.da.mul(&m)).add(&s.a.mul(&dm)))
+                .add(&s.d_spread);
             s.dp.mul(&value).add(&s.p.mul(&change))
         }),
         budget,
@@ -925,7 +966,11 @@ impl<S: Scalar> Solution<'_, S> {
         } else {
             Vec::new()
         };
-        let given = |k: usize| (!absorbed[k].is_zero()).then(|| joint[k].div(&absorbed[k]));
+        let given = |k: usize| {
+            (!absorbed[k].is_zero())
+                .then(|| joint[k].div(&absorbed[k]))
+                .filter(|g| g.to_f64().is_finite())
+        };
         let visit_value = |state: usize| -> Option<S> {
             let visits = visits?;
             match self.structure.kind[state] {
@@ -1034,12 +1079,18 @@ impl<S: Scalar> Solution<'_, S> {
             let theta = S::from_rational(value);
             let ds: Vec<S> = gradients.iter().map(|g| g[j].clone()).collect();
             let d = &self.derivatives[j];
-            let entry = |metric: Option<&S>, derivative: Option<S>| Derivative {
-                elasticity: match (metric, &derivative) {
-                    (Some(m), Some(dm)) => elasticity(dm, &theta, m).map(|e| e.to_number()),
-                    _ => None,
-                },
-                derivative: derivative.map(|dm| dm.to_number()),
+            let entry = |metric: Option<&S>, derivative: Option<S>| {
+                // A derivative that overflowed doubles is reported as unknown, never as NaN.
+                let derivative = derivative.filter(|d| d.to_f64().is_finite());
+                Derivative {
+                    elasticity: match (metric, &derivative) {
+                        (Some(m), Some(dm)) => elasticity(dm, &theta, m)
+                            .filter(|e| e.to_f64().is_finite())
+                            .map(|e| e.to_number()),
+                        _ => None,
+                    },
+                    derivative: derivative.map(|dm| dm.to_number()),
+                }
             };
             let mut report = Sensitivity::default();
             let d_absorbed: Vec<S> = (0..outcome_count)
@@ -1079,17 +1130,15 @@ impl<S: Scalar> Solution<'_, S> {
                         .map(|(k, &a)| {
                             let g = given(k);
                             // (Y / P)' = (Y' P - Y P') / P²
-                            let derivative = g.as_ref().map(|_| {
+                            // (Y / P)' = (Y' - (Y / P) P') / P, which keeps P² from underflowing.
+                            let derivative = g.as_ref().map(|given| {
                                 let d_joint = self.weighted_derivative(
                                     start,
                                     &ds,
                                     &self.at.steps_and_outcome[k],
                                     &d.steps_and_outcome[k],
                                 );
-                                d_joint
-                                    .mul(&absorbed[k])
-                                    .sub(&joint[k].mul(&d_absorbed[k]))
-                                    .div(&absorbed[k].mul(&absorbed[k]))
+                                d_joint.sub(&given.mul(&d_absorbed[k])).div(&absorbed[k])
                             });
                             (ids[a].clone(), entry(g.as_ref(), derivative))
                         })
@@ -1174,12 +1223,9 @@ impl<S: Scalar> Solution<'_, S> {
                                 .add(&d_arrival);
                             let p = &absorbed[k];
                             let given = (!p.is_zero()).then(|| joint.div(p));
-                            let derivative = given.as_ref().map(|_| {
-                                d_joint
-                                    .mul(p)
-                                    .sub(&joint.mul(&d_absorbed[k]))
-                                    .div(&p.mul(p))
-                            });
+                            let derivative = given
+                                .as_ref()
+                                .map(|g| d_joint.sub(&g.mul(&d_absorbed[k])).div(p));
                             (ids[a].clone(), entry(given.as_ref(), derivative))
                         })
                         .collect();
@@ -1224,18 +1270,30 @@ impl<S: Scalar> Solution<'_, S> {
             (mean.to_f64(), second.sub(&mean.mul(&mean)).to_f64())
         });
         let horizon = plan.horizon.unwrap_or_else(|| default_horizon(moments));
+        let entries = (horizon as usize + 1).saturating_mul(absorbing_count + 1);
+        if entries > MAX_REPORTED_NUMBERS {
+            return Err(SolveError::TooLarge(format!(
+                "the distribution up to step {horizon} over {absorbing_count} outcomes would hold \
+                 {entries} numbers, over the limit of {MAX_REPORTED_NUMBERS}; give a smaller \
+                 `horizon`"
+            )));
+        }
         let mut notes = Vec::new();
         let mut targets = Vec::new();
         let mut slots = Vec::new();
         let start_states: Vec<usize> = start.iter().map(|(state, _)| *state).collect();
         // In exact arithmetic a level equal to the limit of the distribution is reached at a
         // finite step only if no mass can circulate for ever on the way.
-        let only_in_the_limit = |level: &S, limit: &S, goal: Option<usize>| {
+        let mut circulating: BTreeMap<Option<usize>, bool> = BTreeMap::new();
+        let mut only_in_the_limit = |level: &S, limit: &S, goal: Option<usize>| {
             S::EXACT
                 && level.at_least(limit)
-                && distribution::circulates(self.chain, self.structure, &start_states, goal)
+                && *circulating.entry(goal).or_insert_with(|| {
+                    distribution::circulates(self.chain, self.structure, &start_states, goal)
+                })
         };
         for (text, q) in &plan.quantiles {
+            budget.check()?;
             let q = S::from_rational(q);
             if !eventually.at_least(&q) {
                 notes.push(format!(
