@@ -1,10 +1,12 @@
 //! Starting the real server on a free port and calling it through the client crate.
 
+use num_bigint::BigInt;
+use num_rational::BigRational;
 use oddsmith::http::Application;
 use oddsmith::settings::Settings;
 use oddsmith_client::types::{SolveRequest, SolveResponse};
 use oddsmith_client::{Client, Error};
-use serde_json::Value;
+use serde_json::{json, Value};
 
 /// A running server and a client for it.
 pub struct TestApp {
@@ -94,4 +96,30 @@ async fn read(response: reqwest::Response) -> (u16, String, Value) {
 /// The exact text of a reported number.
 pub fn exact(number: &oddsmith_client::types::Number) -> &str {
     number.exact.as_deref().expect("an exact answer")
+}
+
+/// The rational n/d.
+pub fn r(n: i64, d: i64) -> BigRational {
+    BigRational::new(BigInt::from(n), BigInt::from(d))
+}
+
+/// A rational as the service writes it: `"n"` or `"n/d"` in lowest terms.
+pub fn text(value: &BigRational) -> String {
+    if value.is_integer() {
+        value.numer().to_string()
+    } else {
+        format!("{}/{}", value.numer(), value.denom())
+    }
+}
+
+/// An invented game's chest that yields the sword with probability `drop` per opening.
+pub fn chest(drop: &str) -> Value {
+    json!({
+        "parameters": {"drop": drop},
+        "transitions": [
+            {"from": "chest", "to": "sword", "probability": "drop"},
+            {"from": "chest", "to": "chest", "probability": "1 - drop"}
+        ],
+        "start": "chest"
+    })
 }

@@ -3,24 +3,11 @@
 
 use std::collections::BTreeMap;
 
-use num_bigint::BigInt;
 use num_rational::BigRational;
 use num_traits::{One, Zero};
 use serde_json::json;
 
-use crate::helpers::{exact, spawn_app};
-
-fn r(n: i64, d: i64) -> BigRational {
-    BigRational::new(BigInt::from(n), BigInt::from(d))
-}
-
-fn text(value: &BigRational) -> String {
-    if value.denom().is_one() {
-        value.numer().to_string()
-    } else {
-        format!("{}/{}", value.numer(), value.denom())
-    }
-}
+use crate::helpers::{exact, r, spawn_app, text};
 
 /// The classical ruin problem on 0..=a: from z, +1 with probability p, -1 with q = 1 - p,
 /// absorbed at 0 (ruin) and at a.

@@ -1,24 +1,11 @@
 //! Time to absorption and accumulated costs through the real server, against closed forms.
 
-use num_bigint::BigInt;
 use num_rational::BigRational;
 use num_traits::{One, Zero};
 use oddsmith_client::types::TuneRequest;
 use serde_json::json;
 
-use crate::helpers::{exact, spawn_app};
-
-fn r(n: i64, d: i64) -> BigRational {
-    BigRational::new(BigInt::from(n), BigInt::from(d))
-}
-
-fn text(v: &BigRational) -> String {
-    if v.is_integer() {
-        v.numer().to_string()
-    } else {
-        format!("{}/{}", v.numer(), v.denom())
-    }
-}
+use crate::helpers::{chest, exact, r, spawn_app, text};
 
 fn binomial(n: u64, k: u64) -> BigRational {
     (0..k).fold(BigRational::one(), |acc, i| {
@@ -219,14 +206,7 @@ async fn tuning_finds_the_drop_rate_that_gives_99_percent_the_sword_by_the_90th_
     // P(sword within 90 chests) = 1 - (1 - drop)^90 = 0.99 at drop = 1 - 0.01^(1/90).
     let app = spawn_app().await;
     let request: TuneRequest = serde_json::from_value(json!({
-        "chain": {
-            "parameters": {"drop": "1/40"},
-            "transitions": [
-                {"from": "chest", "to": "sword", "probability": "drop"},
-                {"from": "chest", "to": "chest", "probability": "1 - drop"}
-            ],
-            "start": "chest"
-        },
+        "chain": chest("1/40"),
         "parameter": "drop",
         "range": ["0.001", "0.2"],
         "target": {"metric": "within", "steps": 90, "outcome": "sword", "equals": "0.99"}

@@ -34,6 +34,7 @@ from fractions import Fraction
 import sympy
 from sympy import Rational
 
+from chains import _decimal_text, _is_decimal
 from reference import Chain, parse_chain_text, parse_value, structure
 
 ZERO = Rational(0)
@@ -59,21 +60,9 @@ def _ids(rng: random.Random, n: int) -> list[str]:
     return out
 
 
-def _decimal_text(x: Fraction) -> str | None:
+def _decimal_or_none(x: Fraction) -> str | None:
     """Exact terminating decimal text of x >= 0, or None when there is none."""
-    d = x.denominator
-    for p in (2, 5):
-        while d % p == 0:
-            d //= p
-    if d != 1:
-        return None
-    whole, rem = divmod(x.numerator, x.denominator)
-    digits = []
-    while rem:
-        rem *= 10
-        q, rem = divmod(rem, x.denominator)
-        digits.append(str(q))
-    return str(whole) + ("." + "".join(digits) if digits else "")
+    return _decimal_text(x) if _is_decimal(x) else None
 
 
 def render(rng: random.Random, x: Fraction):
@@ -83,7 +72,7 @@ def render(rng: random.Random, x: Fraction):
     forms = [lambda: f"{sign}{a.numerator}/{a.denominator}"]
     if a.denominator == 1:
         forms += [lambda: int(x), lambda: str(int(x))]
-    dec = _decimal_text(a)
+    dec = _decimal_or_none(a)
     if dec is not None:
         forms.append(lambda: f"{sign}{dec}")
         if repr(float(dec)) == dec:  # a JSON number whose decimal text is exactly dec

@@ -1022,21 +1022,14 @@ impl<S: Scalar> Solution<'_, S> {
         if plan.report.contains(&Report::Costs) {
             let mut costs = BTreeMap::new();
             for (dimension, vectors) in self.chain.costs.iter().zip(&self.at.costs) {
-                // A start in an absorbing state pays that state's cost once.
-                let on_arrival = |power: u32| {
-                    start.iter().fold(S::zero(), |sum, (state, mass)| {
-                        if self.structure.kind[*state] != StateKind::Absorbing {
-                            return sum;
-                        }
-                        let cost = S::from_rational(&dimension.on_states[*state]);
-                        let cost = if power == 2 { cost.mul(&cost) } else { cost };
-                        sum.add(&mass.mul(&cost))
-                    })
-                };
-                let mean = self.weighted(start, &vectors.mean).add(&on_arrival(1));
+                let on_arrival =
+                    |power, only| self.arrival_cost(dimension, start, power, only, None).0;
+                let mean = self
+                    .weighted(start, &vectors.mean)
+                    .add(&on_arrival(1, None));
                 let second = self
                     .weighted(start, &vectors.second_moment)
-                    .add(&on_arrival(2));
+                    .add(&on_arrival(2, None));
                 let variance = second.sub(&mean.mul(&mean));
                 let mean_given = self
                     .structure
@@ -1045,14 +1038,8 @@ impl<S: Scalar> Solution<'_, S> {
                     .enumerate()
                     .map(|(k, &a)| {
                         let given = (!absorbed[k].is_zero()).then(|| {
-                            let arrival = start.iter().filter(|(state, _)| *state == a).fold(
-                                S::zero(),
-                                |sum, (_, mass)| {
-                                    sum.add(&mass.mul(&S::from_rational(&dimension.on_states[a])))
-                                },
-                            );
                             self.weighted(start, &vectors.joint[k])
-                                .add(&arrival)
+                                .add(&on_arrival(1, Some(a)))
                                 .div(&absorbed[k])
                                 .to_number()
                         });
@@ -1165,28 +1152,8 @@ impl<S: Scalar> Solution<'_, S> {
                 for ((dimension, values), derivatives) in
                     self.chain.costs.iter().zip(&self.at.costs).zip(&d.costs)
                 {
-                    // Terms paid by starts in absorbing states: Σ s_a c_a^power and its
-                    // derivative.
-                    let on_arrival = |power: u32, only: Option<usize>| {
-                        let mut value = S::zero();
-                        let mut change = S::zero();
-                        for ((state, mass), ds) in start.iter().zip(&ds) {
-                            if self.structure.kind[*state] != StateKind::Absorbing
-                                || only.is_some_and(|a| a != *state)
-                            {
-                                continue;
-                            }
-                            let c = S::from_rational(&dimension.on_states[*state]);
-                            let dc = S::from_rational(&dimension.on_states_gradient[*state][j]);
-                            let (term, d_term) = if power == 2 {
-                                (c.mul(&c), c.add(&c).mul(&dc))
-                            } else {
-                                (c, dc)
-                            };
-                            value = value.add(&mass.mul(&term));
-                            change = change.add(&ds.mul(&term)).add(&mass.mul(&d_term));
-                        }
-                        (value, change)
+                    let on_arrival = |power, only| {
+                        self.arrival_cost(dimension, start, power, only, Some((j, &ds)))
                     };
                     let (arrival, d_arrival) = on_arrival(1, None);
                     let (arrival2, d_arrival2) = on_arrival(2, None);
@@ -1446,6 +1413,37 @@ impl<S: Scalar> Solution<'_, S> {
             sensitivities,
             notes,
         ))
+    }
+
+    /// The cost paid by starts in absorbing states (once, on arrival): `Σ s_a c_a^power` over
+    /// the start (only at state `only` when given), and, with `(j, ds)`, its derivative with
+    /// respect to parameter `j` given the start's derivatives `ds`.
+    fn arrival_cost(
+        &self,
+        dimension: &crate::model::chain::CostDimension,
+        start: &[(usize, S)],
+        power: u32,
+        only: Option<usize>,
+        derivative: Option<(usize, &[S])>,
+    ) -> (S, S) {
+        let mut value = S::zero();
+        let mut change = S::zero();
+        for (e, (state, mass)) in start.iter().enumerate() {
+            if self.structure.kind[*state] != StateKind::Absorbing
+                || only.is_some_and(|a| a != *state)
+            {
+                continue;
+            }
+            let c = S::from_rational(&dimension.on_states[*state]);
+            let term = if power == 2 { c.mul(&c) } else { c.clone() };
+            value = value.add(&mass.mul(&term));
+            if let Some((j, ds)) = derivative {
+                let dc = S::from_rational(&dimension.on_states_gradient[*state][j]);
+                let d_term = if power == 2 { c.add(&c).mul(&dc) } else { dc };
+                change = change.add(&ds[e].mul(&term)).add(&mass.mul(&d_term));
+            }
+        }
+        (value, change)
     }
 
     /// Names the trap classes that a start (or, with `by_state`, any state) can fall into.
