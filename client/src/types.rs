@@ -687,6 +687,14 @@ pub struct SolverInfo {
     pub elapsed_ms: f64,
     /// Largest absolute residual `|(I - Q) x - b|` over the systems solved (0 when exact).
     pub max_residual: f64,
+    /// Iterations of the iterative method, or refinement steps of the direct one (0 when exact).
+    #[serde(default)]
+    pub iterations: usize,
+    /// Estimated bound on the relative error of the solution vectors: the residual, with the
+    /// rounding of the matrix itself, times `‖N‖∞` (the largest expected number of steps); 0 when
+    /// exact. Float answers whose estimate exceeds 1e-9 carry a warning.
+    #[serde(default)]
+    pub error_estimate: f64,
 }
 
 /// Body of a successful `POST /v1/solve`.

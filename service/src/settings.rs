@@ -21,9 +21,20 @@ pub struct Settings {
     #[arg(long, env = "ODDSMITH_SOLVE_BUDGET_MS", default_value_t = 10_000)]
     pub solve_budget_ms: u64,
 
-    /// Largest request body accepted, in bytes (after gzip decompression); larger gets 413.
-    #[arg(long, env = "ODDSMITH_MAX_BODY_BYTES", default_value_t = 64 * 1024 * 1024)]
+    /// Largest request body accepted, in bytes (after gzip decompression); larger gets 413. The
+    /// default admits a chain of 5,000,000 transitions in the columnar `table` form.
+    #[arg(long, env = "ODDSMITH_MAX_BODY_BYTES", default_value_t = 512 * 1024 * 1024)]
     pub max_body_bytes: usize,
+
+    /// Working memory one computation may use, in MiB (estimated before each large step:
+    /// solution vectors, factors, iteration vectors); over it the request gets 422.
+    #[arg(long, env = "ODDSMITH_MAX_REQUEST_MEMORY_MB", default_value_t = 8192)]
+    pub max_request_memory_mb: usize,
+
+    /// Largest answer sent, in bytes of JSON; a larger one gets 422 suggesting float
+    /// arithmetic or fewer reported states.
+    #[arg(long, env = "ODDSMITH_MAX_RESPONSE_BYTES", default_value_t = 256 * 1024 * 1024)]
+    pub max_response_bytes: usize,
 
     /// Computations allowed at once; more get 503 with Retry-After (0: twice the cores).
     #[arg(long, env = "ODDSMITH_MAX_CONCURRENT_SOLVES", default_value_t = 0)]

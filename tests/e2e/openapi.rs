@@ -145,6 +145,9 @@ async fn the_document_is_openapi_3_1_with_the_contract_field_names() {
             "transitions",
             "elapsed_ms",
             "max_residual",
+            // Ours, beyond the contract: how far to trust a float answer.
+            "iterations",
+            "error_estimate",
         ],
     );
     expect("Problem", &["type", "title", "status", "detail", "errors"]);

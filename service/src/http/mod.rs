@@ -33,7 +33,11 @@ impl Application {
         let address = listener.local_addr()?;
         let document = openapi::ApiDoc::openapi();
         let state = web::Data::new(AppState {
-            solve_budget: Duration::from_millis(settings.solve_budget_ms),
+            limits: routes::Limits {
+                time: Duration::from_millis(settings.solve_budget_ms),
+                memory_bytes: settings.max_request_memory_mb.saturating_mul(1024 * 1024),
+                response_bytes: settings.max_response_bytes,
+            },
             max_body_bytes: settings.max_body_bytes,
             permits: Arc::new(Semaphore::new(settings.concurrent_solves())),
             openapi_json: document.to_pretty_json().map_err(std::io::Error::other)?,

@@ -9,18 +9,20 @@ use actix_web::{get, post, web, HttpRequest, HttpResponse};
 use futures_util::StreamExt;
 use oddsmith_client::types::{Problem, SolveAnswer, SolveRequest, TuneRequest, TuneResponse};
 use serde::de::DeserializeOwned;
+use serde::Serialize;
 use tokio::sync::Semaphore;
 
 use super::problem::ApiError;
 use crate::model::validate::{pointer_token, Issue};
 use crate::solve::budget::Budget;
+use crate::solve::SolveError;
 use crate::sweep::answer;
 use crate::tune::tune as tune_parameter;
 
 /// What the handlers share.
 pub struct AppState {
-    /// Time budget of one computation.
-    pub solve_budget: Duration,
+    /// Budgets of one computation.
+    pub limits: Limits,
     /// Largest body accepted, after decompression.
     pub max_body_bytes: usize,
     /// One permit per computation allowed at once.
@@ -29,6 +31,17 @@ pub struct AppState {
     pub openapi_json: String,
     /// Each documented path with the methods it accepts (for 404 versus 405).
     pub routes: Vec<(String, Vec<String>)>,
+}
+
+/// The budgets of one computation.
+#[derive(Clone, Copy, Debug)]
+pub struct Limits {
+    /// Time.
+    pub time: Duration,
+    /// Working memory.
+    pub memory_bytes: usize,
+    /// Size of the JSON answer.
+    pub response_bytes: usize,
 }
 
 /// Reads a JSON body: checks the media type, enforces the size limit on the decompressed bytes.
@@ -121,35 +134,51 @@ fn strip_position(message: &str) -> String {
     }
 }
 
-fn solve_blocking(body: &[u8], budget: Duration) -> Result<SolveAnswer, ApiError> {
-    let budget = Budget::new(budget);
+fn solve_blocking(body: &[u8], budget: &Budget) -> Result<SolveAnswer, ApiError> {
     let request: SolveRequest = parse_json(body)?;
-    Ok(answer(&request, &budget)?)
+    Ok(answer(&request, budget)?)
 }
 
-fn tune_blocking(body: &[u8], budget: Duration) -> Result<TuneResponse, ApiError> {
-    let budget = Budget::new(budget);
+fn tune_blocking(body: &[u8], budget: &Budget) -> Result<TuneResponse, ApiError> {
     let request: TuneRequest = parse_json(body)?;
-    Ok(tune_parameter(&request, &budget)?)
+    Ok(tune_parameter(&request, budget)?)
 }
 
-/// Runs CPU-heavy work on the blocking pool under one of the computation permits.
-async fn compute<T: Send + 'static>(
+/// Runs CPU-heavy work on the blocking pool under one of the computation permits, and writes
+/// its JSON there too (an exact answer can run to hundreds of megabytes), refusing an answer over
+/// the size limit.
+async fn compute<T: Serialize + Send + 'static>(
     state: &AppState,
-    work: impl FnOnce(Duration) -> Result<T, ApiError> + Send + 'static,
-) -> Result<T, ApiError> {
+    work: impl FnOnce(&Budget) -> Result<T, ApiError> + Send + 'static,
+) -> Result<HttpResponse, ApiError> {
     let permit = state
         .permits
         .clone()
         .try_acquire_owned()
         .map_err(|_| ApiError::Saturated)?;
-    let budget = state.solve_budget;
-    web::block(move || {
+    let limits = state.limits;
+    let body = web::block(move || {
         let _permit = permit;
-        work(budget)
+        let budget = Budget::new(limits.time).with_memory(limits.memory_bytes);
+        let answer = work(&budget)?;
+        let body = serde_json::to_vec(&answer)
+            .map_err(|e| ApiError::Internal(format!("could not write the answer: {e}")))?;
+        if body.len() > limits.response_bytes {
+            return Err(ApiError::from(SolveError::TooLarge(format!(
+                "the answer is {} bytes of JSON, over the limit of {} bytes (setting \
+                 ODDSMITH_MAX_RESPONSE_BYTES); ask for \"float\" arithmetic, fewer reports, or \
+                 no `by_state`",
+                body.len(),
+                limits.response_bytes
+            ))));
+        }
+        Ok(body)
     })
     .await
-    .map_err(|e| ApiError::Internal(format!("computation panicked: {e}")))?
+    .map_err(|e| ApiError::Internal(format!("computation panicked: {e}")))??;
+    Ok(HttpResponse::Ok()
+        .content_type("application/json")
+        .body(body))
 }
 
 /// Solve an absorbing Markov chain.
@@ -192,11 +221,9 @@ pub async fn solve(
     request: HttpRequest,
     payload: web::Payload,
     state: web::Data<AppState>,
-) -> Result<web::Json<SolveAnswer>, ApiError> {
+) -> Result<HttpResponse, ApiError> {
     let body = read_body(&request, payload, state.max_body_bytes).await?;
-    Ok(web::Json(
-        compute(&state, move |budget| solve_blocking(&body, budget)).await?,
-    ))
+    compute(&state, move |budget| solve_blocking(&body, budget)).await
 }
 
 /// Find the parameter value at which a metric reaches a target.
@@ -241,11 +268,9 @@ pub async fn tune(
     request: HttpRequest,
     payload: web::Payload,
     state: web::Data<AppState>,
-) -> Result<web::Json<TuneResponse>, ApiError> {
+) -> Result<HttpResponse, ApiError> {
     let body = read_body(&request, payload, state.max_body_bytes).await?;
-    Ok(web::Json(
-        compute(&state, move |budget| tune_blocking(&body, budget)).await?,
-    ))
+    compute(&state, move |budget| tune_blocking(&body, budget)).await
 }
 
 /// Liveness: answers while the process runs.

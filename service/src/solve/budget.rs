@@ -1,5 +1,7 @@
-//! The time budget of one computation: solvers call [`Budget::check`] as they go and stop with
-//! [`SolveError::BudgetExceeded`] once the deadline has passed.
+//! The budget of one computation. Time: solvers call [`Budget::check`] as they go and stop with
+//! [`SolveError::BudgetExceeded`] once the deadline has passed. Memory: before allocating
+//! anything large, solvers call [`Budget::reserve`] with their estimate, which refuses what would
+//! not fit.
 
 use std::time::{Duration, Instant};
 
@@ -11,6 +13,7 @@ pub struct Budget {
     started: Instant,
     deadline: Instant,
     limit: Duration,
+    memory_bytes: usize,
 }
 
 impl Budget {
@@ -22,7 +25,34 @@ impl Budget {
             started,
             deadline: started + limit,
             limit,
+            memory_bytes: usize::MAX,
         }
+    }
+
+    /// The same budget with at most `bytes` of working memory for the computation.
+    #[must_use]
+    pub fn with_memory(self, bytes: usize) -> Self {
+        Budget {
+            memory_bytes: bytes,
+            ..self
+        }
+    }
+
+    /// Refuses a step whose estimated working memory (`bytes`, for `what`) exceeds the limit.
+    ///
+    /// # Errors
+    /// [`SolveError::TooLarge`] naming the estimate and the limit.
+    pub fn reserve(&self, bytes: f64, what: &str) -> Result<(), SolveError> {
+        if bytes > self.memory_bytes as f64 {
+            const MIB: f64 = 1024.0 * 1024.0;
+            return Err(SolveError::TooLarge(format!(
+                "{what} would need about {:.0} MiB of memory, over the limit of {:.0} MiB for one \
+                 request (setting ODDSMITH_MAX_REQUEST_MEMORY_MB)",
+                bytes / MIB,
+                self.memory_bytes as f64 / MIB
+            )));
+        }
+        Ok(())
     }
 
     /// A budget ending at the same time as this one or after `fraction` of the total, whichever
@@ -34,6 +64,7 @@ impl Budget {
             started: self.started,
             deadline,
             limit: deadline - self.started,
+            memory_bytes: self.memory_bytes,
         }
     }
 

@@ -12,9 +12,14 @@
 
 pub mod budget;
 pub mod distribution;
+pub mod direct;
 pub mod elimination;
+pub mod engine;
+pub mod krylov;
+pub mod padic;
 pub mod scalar;
 pub mod sensitivity;
+pub mod sparse;
 
 use std::collections::{BTreeMap, BTreeSet};
 use std::time::Duration;
@@ -28,13 +33,18 @@ use oddsmith_client::types::{
 use crate::model::chain::Chain;
 use crate::structure::{StateKind, Structure};
 use budget::Budget;
-use elimination::{multiply, Factors, SparseRow};
+use elimination::SparseRow;
+use engine::LinearSolver;
 use scalar::Scalar;
 use sensitivity::{differentiate, elasticity, Perturbation};
 
 /// Cost model of exact solving used by `auto`: seconds per (factor entry x transient state),
 /// fitted on the 2-core reference machine in a release build (see DEVELOPERS.md, "Exact or float").
 pub const EXACT_SECONDS_PER_ENTRY_STATE: f64 = 3e-6;
+
+/// Largest estimated relative error, or miss of a probability bound, that a float answer may
+/// have without being flagged.
+pub const VERIFICATION_TOLERANCE: f64 = 1e-9;
 
 /// Largest horizon a request may ask for.
 pub const MAX_HORIZON: u64 = 1_000_000;
@@ -108,17 +118,25 @@ pub fn solve(chain: &Chain, plan: &Plan, budget: &Budget) -> Result<SolveRespons
     let structure = Structure::of(chain);
     check_size(chain, &structure, plan)?;
     match plan.arithmetic {
-        Arithmetic::Exact => run::<BigRational>(chain, &structure, plan, budget),
-        Arithmetic::Float => run::<f64>(chain, &structure, plan, budget),
+        Arithmetic::Exact => Ok(run::<BigRational>(chain, &structure, plan, budget)?.response),
+        Arithmetic::Float => verified_float(chain, &structure, plan, budget),
         Arithmetic::Auto => {
             let trial = budget.share(AUTO_EXACT_BUDGET_SHARE);
             let predicted = predicted_exact_seconds(chain, &structure, budget)?;
             if predicted > trial.limit().as_secs_f64() {
-                return run::<f64>(chain, &structure, plan, budget);
+                return verified_float(chain, &structure, plan, budget);
             }
             match run::<BigRational>(chain, &structure, plan, &trial) {
+                Err(SolveError::TooLarge(why)) => {
+                    let mut answer = verified_float(chain, &structure, plan, budget)?;
+                    answer.warnings.push(format!(
+                        "the answer was computed in floating point because exact arithmetic \
+                         would not fit: {why}"
+                    ));
+                    Ok(answer)
+                }
                 Err(SolveError::BudgetExceeded { limit }) => {
-                    let mut answer = run::<f64>(chain, &structure, plan, budget)?;
+                    let mut answer = verified_float(chain, &structure, plan, budget)?;
                     answer.warnings.push(format!(
                         "exact arithmetic did not finish within {} ms, so the answer was \
                          computed in floating point; ask for \"exact\" to spend the whole budget",
@@ -126,14 +144,47 @@ pub fn solve(chain: &Chain, plan: &Plan, budget: &Budget) -> Result<SolveRespons
                     ));
                     Ok(answer)
                 }
-                other => other,
+                other => Ok(other?.response),
             }
         }
     }
 }
 
-/// Refuses, before any work, an answer whose size alone would exhaust memory or the network.
-fn check_size(chain: &Chain, structure: &Structure, plan: &Plan) -> Result<(), SolveError> {
+/// A float answer that passed verification, or else the exact answer when it is predicted to
+/// fit in half of the remaining budget, or else the float answer with its warning.
+fn verified_float(
+    chain: &Chain,
+    structure: &Structure,
+    plan: &Plan,
+    budget: &Budget,
+) -> Result<SolveResponse, SolveError> {
+    let float = run::<f64>(chain, structure, plan, budget)?;
+    if !float.failed_verification {
+        return Ok(float.response);
+    }
+    let remaining = budget.limit().saturating_sub(budget.elapsed()).as_secs_f64();
+    if predicted_exact_seconds(chain, structure, budget)? < remaining / 2.0 {
+        let until =
+            (budget.elapsed().as_secs_f64() + 0.75 * remaining) / budget.limit().as_secs_f64();
+        match run::<BigRational>(chain, structure, plan, &budget.share(until)) {
+            Ok(exact) => {
+                let mut answer = exact.response;
+                answer.warnings.push(
+                    "the floating-point answer failed verification, so it was computed in \
+                     exact arithmetic instead"
+                        .to_owned(),
+                );
+                return Ok(answer);
+            }
+            Err(SolveError::BudgetExceeded { .. } | SolveError::TooLarge(_)) => {}
+            Err(other) => return Err(other),
+        }
+    }
+    Ok(float.response)
+}
+
+/// How many numbers the solution vectors hold.
+fn solution_numbers(chain: &Chain, structure: &Structure, plan: &Plan) -> usize {
     let n = structure.transient.len();
     let outcomes = structure.absorbing.len() + structure.trap_classes.len();
     let copies = if plan.report.contains(&Report::Steps) {
@@ -147,10 +198,16 @@ fn check_size(chain: &Chain, structure: &Structure, plan: &Plan) -> Result<(), S
     } else {
         1
     };
-    let solution = n
-        .saturating_mul(outcomes)
+    n.saturating_mul(outcomes)
         .saturating_mul(copies)
-        .saturating_mul(sets);
+        .saturating_mul(sets)
+}
+
+/// Refuses, before any work, an answer whose size alone would exhaust memory or the network.
+fn check_size(chain: &Chain, structure: &Structure, plan: &Plan) -> Result<(), SolveError> {
+    let n = structure.transient.len();
+    let outcomes = structure.absorbing.len() + structure.trap_classes.len();
+    let solution = solution_numbers(chain, structure, plan);
     if solution > MAX_SOLUTION_NUMBERS {
         return Err(SolveError::TooLarge(format!(
             "{n} transient states and {outcomes} outcomes need {solution} intermediate numbers, \
@@ -219,7 +276,7 @@ fn predicted_exact_seconds(
     budget: &Budget,
 ) -> Result<f64, SolveError> {
     let system = linear_system::<f64>(chain, structure, budget)?;
-    let factors = Factors::new(system.matrix, budget)?;
+    let factors = elimination::Factors::new(system.matrix, budget)?;
     let n = structure.transient.len();
     Ok(factors.entries() as f64 * n as f64 * EXACT_SECONDS_PER_ENTRY_STATE)
 }
@@ -304,9 +361,15 @@ fn run<S: Scalar>(
     structure: &Structure,
     plan: &Plan,
     budget: &Budget,
-) -> Result<SolveResponse, SolveError> {
+) -> Result<Run, SolveError> {
     let n = structure.transient.len();
     let absorbing_count = structure.absorbing.len();
+    // Exact numbers grow by a few bits per transient state (an estimate: 2 bytes per state).
+    let bytes_per_number = if S::EXACT { 32.0 + 2.0 * n as f64 } else { 8.0 };
+    budget.reserve(
+        solution_numbers(chain, structure, plan) as f64 * bytes_per_number,
+        "the solution vectors",
+    )?;
     let LinearSystem {
         matrix: rows,
         outcomes: rhs,
@@ -316,37 +379,30 @@ fn run<S: Scalar>(
         outcome_of[a] = Some(k);
     }
 
-    let factors = Factors::new(rows.clone(), budget)?;
-    let mut max_residual: f64 = 0.0;
-    let mut solve = |b: Vec<S>| -> Result<Vec<S>, SolveError> {
-        let x = factors.solve(b.clone(), budget)?;
-        if !S::EXACT {
-            if !x.iter().all(|v| v.to_f64().is_finite()) {
-                return Err(SolveError::Numerical(
-                    "a result overflowed the range of doubles".into(),
-                ));
-            }
-            max_residual = max_residual.max(residual(&rows, &x, &b));
-        }
-        Ok(x)
-    };
-    let outcome: Vec<Vec<S>> = rhs.into_iter().map(&mut solve).collect::<Result<_, _>>()?;
+    let solver = S::engine(rows, budget)?;
     let wants_steps =
         plan.report.contains(&Report::Steps) || plan.report.contains(&Report::Distribution);
+    // Two batches: what depends only on A (outcomes, steps), then what depends on those.
+    let mut first = rhs;
+    if wants_steps {
+        first.push(vec![S::one(); n]);
+    }
+    let mut solved = solver.solve_many(first, budget)?;
     let mut at = if wants_steps {
-        let steps = solve(vec![S::one(); n])?;
-        let steps_twice = solve(steps.clone())?;
-        let steps_and_outcome = outcome[..absorbing_count]
-            .iter()
-            .map(|b| solve(b.clone()))
-            .collect::<Result<_, _>>()?;
+        let steps = solved.pop().expect("the steps were asked for");
+        let outcome = solved;
+        let mut second = vec![steps.clone()];
+        second.extend(outcome[..absorbing_count].iter().cloned());
+        let mut second = solver.solve_many(second, budget)?;
+        let steps_and_outcome = second.split_off(1);
+        let steps_twice = second.pop().expect("one solution per right-hand side");
         Vectors::with_steps(outcome, steps, steps_twice, steps_and_outcome)
     } else {
-        Vectors::outcomes_only(outcome)
+        Vectors::outcomes_only(solved)
     };
     if plan.report.contains(&Report::Costs) {
         for dimension in &chain.costs {
-            let costs = cost_vectors(chain, structure, dimension, &at.outcome, &mut solve)?;
+            let costs = cost_vectors(chain, structure, dimension, &at.outcome, &*solver, budget)?;
             at.costs.push(costs);
         }
     }
@@ -363,7 +419,7 @@ fn run<S: Scalar>(
     let mut derivatives = Vec::with_capacity(parameters);
     for perturbation in &perturbations {
         budget.check()?;
-        let d = |x: &[S], db: Option<&[S]>| differentiate(&factors, perturbation, x, db, budget);
+        let d = |x: &[S], db: Option<&[S]>| differentiate(&*solver, perturbation, x, db, budget);
         let outcome: Vec<Vec<S>> = at
             .outcome
             .iter()
@@ -394,7 +450,7 @@ fn run<S: Scalar>(
                     &at.outcome,
                     &vectors.outcome,
                     values,
-                    &factors,
+                    &*solver,
                     budget,
                 )?);
             }
@@ -411,7 +467,7 @@ fn run<S: Scalar>(
     };
     let wants_visits = plan.report.contains(&Report::Visits);
     // Visits from a start s are sᵀ N, so d/dθ is (dsᵀ + vᵀ dQ) N: one transposed solve each.
-    let mut visits_from = |start: &[(usize, S)],
+    let visits_from = |start: &[(usize, S)],
                            start_gradients: &[Vec<S>]|
      -> Result<Option<Visits<S>>, SolveError> {
         if !wants_visits {
@@ -423,10 +479,7 @@ fn run<S: Scalar>(
                 c[p] = mass.clone();
             }
         }
-        let x = factors.solve_transposed(c.clone(), budget)?;
-        if !S::EXACT {
-            max_residual = max_residual.max(residual_transposed(&rows, &x, &c));
-        }
+        let x = solver.solve_transposed(c, budget)?;
         let mut derivatives = Vec::with_capacity(perturbations.len());
         for (j, perturbation) in perturbations.iter().enumerate() {
             let mut ds = vec![S::zero(); n];
@@ -436,7 +489,7 @@ fn run<S: Scalar>(
                 }
             }
             let rhs = perturbation.dq_transposed_times_plus(&x, ds);
-            derivatives.push(factors.solve_transposed(rhs, budget)?);
+            derivatives.push(solver.solve_transposed(rhs, budget)?);
         }
         Ok(Some(Visits { at: x, derivatives }))
     };
@@ -496,10 +549,23 @@ fn run<S: Scalar>(
             .push("`sensitivity` was asked for, but the chain declares no `parameters`".to_owned());
     }
     warnings.extend(solution.trap_warning(plan.by_state));
-    if !S::EXACT {
-        warnings.extend(solution.verification_warning());
+    let engine = solver.report();
+    let (error_estimate, doubt) = if S::EXACT {
+        (0.0, None)
+    } else {
+        // ‖N‖∞ = max expected steps, since N ≥ 0 (I - Q is an M-matrix).
+        let fundamental_norm = if wants_steps {
+            max_abs(&solution.at.steps)
+        } else {
+            max_abs(&solver.solve(vec![S::one(); n], budget)?)
+        };
+        let estimate = fundamental_norm * engine.relative_backward_error;
+        (estimate, solution.verify(estimate))
+    };
+    if let Some(doubt) = &doubt {
+        warnings.push(doubt.clone());
     }
-    Ok(SolveResponse {
+    let response = SolveResponse {
         arithmetic: if S::EXACT {
             UsedArithmetic::Exact
         } else {
@@ -509,21 +575,29 @@ fn run<S: Scalar>(
         by_state,
         warnings,
         solver: SolverInfo {
-            method: format!(
-                "{} sparse LU, Markowitz order ({} factor entries)",
-                if S::EXACT {
-                    "exact rational"
-                } else {
-                    "float64"
-                },
-                factors.entries()
-            ),
+            method: engine.method,
             transient_states: n,
             transitions: chain.transition_count(),
             elapsed_ms: budget.elapsed().as_secs_f64() * 1e3,
-            max_residual,
+            max_residual: engine.max_residual,
+            iterations: engine.iterations,
+            error_estimate,
         },
+    };
+    Ok(Run {
+        response,
+        failed_verification: doubt.is_some(),
     })
+}
+
+/// A finished run, and whether a float answer failed its verification.
+struct Run {
+    response: SolveResponse,
+    failed_verification: bool,
+}
+
+fn max_abs<S: Scalar>(values: &[S]) -> f64 {
+    values.iter().fold(0.0, |m, v| m.max(v.to_f64().abs()))
 }
 
 /// The linear systems of a chain: `A = I - Q` and the right-hand sides `R`.
@@ -602,8 +676,10 @@ fn cost_vectors<S: Scalar>(
     structure: &Structure,
     dimension: &crate::model::chain::CostDimension,
     outcome: &[Vec<S>],
-    solve: &mut impl FnMut(Vec<S>) -> Result<Vec<S>, SolveError>,
+    solver: &dyn LinearSolver<S>,
+    budget: &Budget,
 ) -> Result<CostVectors<S>, SolveError> {
+    let solve = |b: Vec<S>| solver.solve(b, budget);
     let n = structure.transient.len();
     let absorbing_count = structure.absorbing.len();
     // (probability, mean step cost, target, variance of the step cost) for every transition out
@@ -680,7 +756,7 @@ fn cost_derivatives<S: Scalar>(
     outcome: &[Vec<S>],
     d_outcome: &[Vec<S>],
     values: &CostVectors<S>,
-    factors: &Factors<S>,
+    solver: &dyn LinearSolver<S>,
     budget: &Budget,
 ) -> Result<CostVectors<S>, SolveError> {
     struct Step<S> {
@@ -737,14 +813,14 @@ fn cost_derivatives<S: Scalar>(
             .collect()
     };
     let two = S::one().add(&S::one());
-    let mean = factors.solve(
+    let mean = solver.solve(
         rhs(&|s| {
             s.dp.mul(&s.a.add(&at(&values.mean, s.target)))
                 .add(&s.p.mul(&s.da))
         }),
         budget,
     )?;
-    let second_moment = factors.solve(
+    let second_moment = solver.solve(
         rhs(&|s| {
             let m = at(&values.mean, s.target);
             let dm = at(&mean, s.target);
@@ -770,7 +846,7 @@ fn cost_derivatives<S: Scalar>(
                     at(&outcome[k], j)
                 }
             };
-            factors.solve(
+            solver.solve(
                 rhs(&|s| {
                     let value = s.a.mul(&h(s.target)).add(&at(&values.joint[k], s.target));
                     let change =
@@ -808,29 +884,6 @@ fn second_moment<S: Scalar>(steps_twice: &[S], steps: &[S]) -> Vec<S> {
         .zip(steps)
         .map(|(w, t)| w.add(w).sub(t))
         .collect()
-}
-
-/// `max |A x - b|`.
-fn residual<S: Scalar>(rows: &[SparseRow<S>], x: &[S], b: &[S]) -> f64 {
-    multiply(rows, x)
-        .iter()
-        .zip(b)
-        .map(|(ax, b)| ax.sub(b).to_f64().abs())
-        .fold(0.0, f64::max)
-}
-
-/// `max |Aᵀ x - c|`.
-fn residual_transposed<S: Scalar>(rows: &[SparseRow<S>], x: &[S], c: &[S]) -> f64 {
-    let mut atx = vec![S::zero(); c.len()];
-    for (i, row) in rows.iter().enumerate() {
-        for (j, a) in row {
-            atx[*j] = atx[*j].add(&a.mul(&x[i]));
-        }
-    }
-    atx.iter()
-        .zip(c)
-        .map(|(v, c)| v.sub(c).to_f64().abs())
-        .fold(0.0, f64::max)
 }
 
 impl<S: Scalar> Solution<'_, S> {
@@ -1484,8 +1537,9 @@ impl<S: Scalar> Solution<'_, S> {
         })
     }
 
-    /// Checks a float answer: each transient state's outcome probabilities in [0, 1] summing to 1.
-    fn verification_warning(&self) -> Option<String> {
+    /// Checks a float answer: each transient state's outcome probabilities in [0, 1] summing to
+    /// 1, expected steps non-negative, and the estimated relative error small. Says what failed.
+    fn verify(&self, error_estimate: f64) -> Option<String> {
         let mut worst: f64 = 0.0;
         for p in 0..self.structure.transient.len() {
             let mut total = 0.0;
@@ -1496,10 +1550,27 @@ impl<S: Scalar> Solution<'_, S> {
             }
             worst = worst.max((total - 1.0).abs());
         }
-        (worst > 1e-9).then(|| {
+        let negative_steps = self.at.steps.iter().any(|t| t.to_f64() < 0.0);
+        let mut failures = Vec::new();
+        if worst > VERIFICATION_TOLERANCE || !worst.is_finite() {
+            failures.push(format!(
+                "outcome probabilities leave [0, 1] or miss summing to 1 by up to {worst:.1e}"
+            ));
+        }
+        if negative_steps {
+            failures.push("some expected steps came out negative".to_owned());
+        }
+        if error_estimate > VERIFICATION_TOLERANCE || !error_estimate.is_finite() {
+            failures.push(format!(
+                "the estimated relative error of the solution is {error_estimate:.1e} (residual \
+                 times the largest expected number of steps)"
+            ));
+        }
+        (!failures.is_empty()).then(|| {
             format!(
-                "floating-point answer is inaccurate: outcome probabilities miss summing to 1 by \
-                 up to {worst:.1e}; ask for \"exact\" arithmetic"
+                "floating-point answer failed verification: {}; its digits cannot be trusted \
+                 that far, ask for \"exact\" arithmetic",
+                failures.join("; ")
             )
         })
     }

@@ -5,6 +5,10 @@ use num_rational::BigRational;
 use num_traits::{One, Zero};
 use oddsmith_client::types::Number;
 
+use super::budget::Budget;
+use super::elimination::SparseRow;
+use super::engine::{self, LinearSolver};
+use super::SolveError;
 use crate::model::value::{exact_text, to_f64};
 
 /// A field the solvers can compute in.
@@ -33,10 +37,24 @@ pub trait Scalar: Clone + Send + std::fmt::Debug + 'static {
     fn at_least(&self, other: &Self) -> bool;
     /// The wire form: a double, plus the exact text for exact arithmetic.
     fn to_number(&self) -> Number;
+    /// The engine that solves systems with `A = I - Q` (given by its rows) in this arithmetic.
+    ///
+    /// # Errors
+    /// [`SolveError`] when preparing `A` runs out of time or memory, or breaks down.
+    fn engine(
+        rows: Vec<SparseRow<Self>>,
+        budget: &Budget,
+    ) -> Result<Box<dyn LinearSolver<Self>>, SolveError>;
 }
 
 impl Scalar for BigRational {
     const EXACT: bool = true;
+    fn engine(
+        rows: Vec<SparseRow<Self>>,
+        budget: &Budget,
+    ) -> Result<Box<dyn LinearSolver<Self>>, SolveError> {
+        engine::exact(rows, budget)
+    }
     fn zero() -> Self {
         Zero::zero()
     }
@@ -76,6 +94,12 @@ impl Scalar for BigRational {
 }
 
 impl Scalar for f64 {
+    fn engine(
+        rows: Vec<SparseRow<Self>>,
+        budget: &Budget,
+    ) -> Result<Box<dyn LinearSolver<Self>>, SolveError> {
+        engine::float(rows, budget)
+    }
     const EXACT: bool = false;
     fn zero() -> Self {
         0.0

@@ -3,7 +3,8 @@
 //! factors already at hand, exact in exact arithmetic (no finite differences).
 
 use super::budget::Budget;
-use super::elimination::{Factors, SparseRow};
+use super::elimination::SparseRow;
+use super::engine::LinearSolver;
 use super::scalar::Scalar;
 use super::SolveError;
 use crate::model::chain::Chain;
@@ -90,7 +91,7 @@ impl<S: Scalar> Perturbation<S> {
 /// # Errors
 /// [`SolveError::BudgetExceeded`] past the deadline.
 pub fn differentiate<S: Scalar>(
-    factors: &Factors<S>,
+    solver: &dyn LinearSolver<S>,
     perturbation: &Perturbation<S>,
     x: &[S],
     db: Option<&[S]>,
@@ -102,7 +103,7 @@ pub fn differentiate<S: Scalar>(
             *r = r.add(d);
         }
     }
-    factors.solve(rhs, budget)
+    solver.solve(rhs, budget)
 }
 
 /// The elasticity `derivative · θ / metric`, or `None` where the metric is 0.
