@@ -119,7 +119,10 @@ pub fn answer(request: &SolveRequest, budget: &Budget) -> Result<SolveAnswer, Re
 }
 
 /// What to compute for a request: its report, and its distribution settings checked.
-fn plan(request: &SolveRequest) -> Result<Plan, RequestError> {
+///
+/// # Errors
+/// [`RequestError::Invalid`] for a horizon or quantile out of range.
+pub fn plan(request: &SolveRequest) -> Result<Plan, RequestError> {
     let mut plan = Plan::new(
         request.arithmetic,
         request.report.iter().copied().collect::<BTreeSet<_>>(),

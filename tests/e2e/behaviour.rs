@@ -192,12 +192,36 @@ pub fn dense_chain(n: usize) -> serde_json::Value {
     json!({"transitions": transitions, "start": "s0"})
 }
 
+/// A random chain of our own: each of `n` states jumps to 5 pseudo-random states (weights
+/// 1..4) and leaves with weight 1 to `won` or `lost`.
+pub fn random_chain(n: usize, seed: u64) -> serde_json::Value {
+    let mut state = seed.wrapping_mul(0x9E37_79B9_7F4A_7C15) | 1;
+    let mut next = move |bound: usize| {
+        state ^= state << 13;
+        state ^= state >> 7;
+        state ^= state << 17;
+        (state % bound as u64) as usize
+    };
+    let mut transitions = Vec::new();
+    for i in 0..n {
+        for _ in 0..5 {
+            let (to, weight) = (next(n), 1 + next(4));
+            transitions
+                .push(json!({"from": format!("s{i}"), "to": format!("s{to}"), "weight": weight}));
+        }
+        let exit = if i % 2 == 0 { "won" } else { "lost" };
+        transitions.push(json!({"from": format!("s{i}"), "to": exit, "weight": 1}));
+    }
+    json!({"transitions": transitions, "start": "s0"})
+}
+
 #[tokio::test]
 async fn auto_answers_in_float_when_exact_is_predicted_to_overrun_and_exact_when_small() {
-    // Exact elimination of a dense 200-state chain takes about 25 s on the reference machine;
-    // the prediction sends it straight to float instead of spending a quarter of the budget.
+    // A random 3,000-state chain fills its factors almost completely, and its exact answers
+    // run to thousands of bits: the prediction sends it straight to float instead of spending a
+    // quarter of the budget.
     let app = spawn_app_with(|s| s.solve_budget_ms = 2_000).await;
-    let answer = app.solve_ok(json!({"chain": dense_chain(200)})).await;
+    let answer = app.solve_ok(json!({"chain": random_chain(3_000, 1)})).await;
     assert_eq!(answer.arithmetic, UsedArithmetic::Float);
     // No exact attempt was made and abandoned: that would leave a fallback warning.
     assert!(
@@ -207,6 +231,14 @@ async fn auto_answers_in_float_when_exact_is_predicted_to_overrun_and_exact_when
     );
     let small = app.solve_ok(json!({"chain": dense_chain(5)})).await;
     assert_eq!(small.arithmetic, UsedArithmetic::Exact);
+    // p-adic lifting makes a dense 100-state chain cheap enough for exact arithmetic.
+    let dense = app.solve_ok(json!({"chain": dense_chain(100)})).await;
+    assert_eq!(dense.arithmetic, UsedArithmetic::Exact);
+    assert!(
+        dense.solver.method.contains("p-adic"),
+        "{}",
+        dense.solver.method
+    );
 }
 
 #[tokio::test]

@@ -8,6 +8,12 @@ use reqwest::Method;
 use serde_json::{json, Value};
 
 use crate::behaviour::dense_chain;
+
+/// A request that keeps exact arithmetic busy for minutes: the time distribution of a dense
+/// chain over 100,000 steps, whose probabilities gain digits at every step.
+fn slow_exact_request() -> Value {
+    json!({"chain": dense_chain(20), "arithmetic": "exact", "report": ["distribution"], "horizon": 100_000})
+}
 use crate::helpers::{spawn_app, spawn_app_with, TestApp};
 
 const JSON: &str = "application/json";
@@ -230,18 +236,14 @@ async fn unknown_routes_are_404_and_wrong_methods_405_with_allow() {
 async fn a_computation_over_its_budget_is_422_promptly_and_others_are_still_served() {
     let app = spawn_app_with(|s| s.solve_budget_ms = 300).await;
     let started = Instant::now();
-    let answer = post_json(
-        &app,
-        &json!({"chain": dense_chain(200), "arithmetic": "exact"}),
-    )
-    .await;
+    let answer = post_json(&app, &slow_exact_request()).await;
     assert_problem(&answer, 422);
     assert!(answer.2["detail"].as_str().unwrap().contains("300 ms"));
     assert!(answer.2["type"]
         .as_str()
         .unwrap()
         .ends_with("budget-exceeded"));
-    // Parsing a 40,000-transition body and stopping take a moment beyond the budget itself.
+    // Stopping takes a moment beyond the budget itself.
     assert!(
         started.elapsed() < Duration::from_secs(10),
         "took {:?}",
@@ -258,8 +260,7 @@ async fn when_every_slot_is_busy_the_answer_is_503_with_retry_after() {
         s.solve_budget_ms = 5_000;
     })
     .await;
-    let body =
-        serde_json::to_vec(&json!({"chain": dense_chain(200), "arithmetic": "exact"})).unwrap();
+    let body = serde_json::to_vec(&slow_exact_request()).unwrap();
     let http = app.http.clone();
     let url = format!("{}/v1/solve", app.address);
     let slow = tokio::spawn(async move {
@@ -379,4 +380,63 @@ async fn runaway_numbers_and_oversized_requests_are_refused_promptly() {
         "{:?}",
         started.elapsed()
     );
+}
+
+/// A 1-D walk in the columnar form: states 0..=n+1, absorbing ends, up 2/5, down 1/2, stay 1/10.
+pub fn walk_table(n: usize) -> Value {
+    let mut from = Vec::new();
+    let mut to = Vec::new();
+    let mut probability = Vec::new();
+    for z in 1..=n {
+        for (target, p) in [(z + 1, "0.4"), (z - 1, "0.5"), (z, "0.1")] {
+            from.push(z);
+            to.push(target);
+            probability.push(p);
+        }
+    }
+    let states: Vec<String> = (0..n + 2).map(|z| format!("z{z}")).collect();
+    json!({"states": states, "table": {"from": from, "to": to, "probability": probability}, "start": "z1"})
+}
+
+#[tokio::test]
+async fn a_request_over_the_memory_limit_is_422_naming_the_setting() {
+    let app = spawn_app_with(|s| s.max_request_memory_mb = 1).await;
+    let answer = post_json(
+        &app,
+        &json!({"chain": walk_table(50_000), "arithmetic": "float"}),
+    )
+    .await;
+    assert_problem(&answer, 422);
+    let detail = answer.2["detail"].as_str().unwrap();
+    assert!(
+        detail.contains("ODDSMITH_MAX_REQUEST_MEMORY_MB"),
+        "{detail}"
+    );
+    // A small chain still fits.
+    let small = post_json(
+        &app,
+        &json!({"chain": walk_table(10), "arithmetic": "float"}),
+    )
+    .await;
+    assert_eq!(small.0, 200);
+}
+
+#[tokio::test]
+async fn an_answer_over_the_response_limit_is_422_suggesting_less() {
+    let app = spawn_app_with(|s| s.max_response_bytes = 20_000).await;
+    // Exact answers on a 300-state walk run to thousands of digits from each state.
+    let request = json!({"chain": walk_table(300), "arithmetic": "exact", "by_state": true});
+    let answer = post_json(&app, &request).await;
+    assert_problem(&answer, 422);
+    let detail = answer.2["detail"].as_str().unwrap();
+    assert!(
+        detail.contains("ODDSMITH_MAX_RESPONSE_BYTES") && detail.contains("float"),
+        "{detail}"
+    );
+    let small = post_json(
+        &app,
+        &json!({"chain": walk_table(3), "arithmetic": "exact"}),
+    )
+    .await;
+    assert_eq!(small.0, 200);
 }

@@ -228,18 +228,29 @@ struct TransitionInput<'a> {
     probability: Option<&'a Value>,
     weight: Option<&'a Value>,
     cost: Option<&'a Cost>,
-    /// Pointer to the transition (a `transitions` entry, or the table's `from` cell).
-    at: String,
-    /// For a table row, its index into the value columns.
-    row: Option<usize>,
+    /// Index of the `transitions` entry, or of the table row.
+    index: usize,
+    /// Whether it is a table row.
+    in_table: bool,
 }
 
 impl TransitionInput<'_> {
+    /// Pointer to the transition (a `transitions` entry, or the table's `from` cell); written
+    /// only when there is something to report, since big tables have millions of rows.
+    fn at(&self) -> String {
+        if self.in_table {
+            format!("/chain/table/from/{}", self.index)
+        } else {
+            format!("/chain/transitions/{}", self.index)
+        }
+    }
+
     /// Pointer to the transition's value of this kind (`probability` or `weight`).
     fn value_at(&self, kind: &str) -> String {
-        match self.row {
-            Some(k) => format!("/chain/table/{kind}/{k}"),
-            None => format!("{}/{kind}", self.at),
+        if self.in_table {
+            format!("/chain/table/{kind}/{}", self.index)
+        } else {
+            format!("/chain/transitions/{}/{kind}", self.index)
         }
     }
 }
@@ -257,8 +268,8 @@ fn transition_inputs<'a>(spec: &'a ChainSpec, issues: &mut Issues) -> Vec<Transi
                 probability: t.probability.as_ref(),
                 weight: t.weight.as_ref(),
                 cost: t.cost.as_ref(),
-                at: format!("/chain/transitions/{k}"),
-                row: None,
+                index: k,
+                in_table: false,
             })
             .collect();
     };
@@ -325,8 +336,8 @@ fn transition_inputs<'a>(spec: &'a ChainSpec, issues: &mut Issues) -> Vec<Transi
             probability: table.probability.as_ref().map(|p| &p[k]),
             weight: table.weight.as_ref().map(|w| &w[k]),
             cost: None,
-            at: format!("/chain/table/from/{k}"),
-            row: Some(k),
+            index: k,
+            in_table: true,
         });
     }
     inputs
@@ -384,16 +395,21 @@ pub fn validate(
     }
 
     // Transitions, grouped by source state.
-    let mut rows: HashMap<usize, Row> = HashMap::new();
+    let mut rows: Vec<Option<Row>> = Vec::new();
     let inputs = transition_inputs(spec, &mut issues);
     for (k, t) in inputs.iter().enumerate() {
-        let at = t.at.clone();
         for (field, id) in [("from", t.from), ("to", t.to)] {
             if id.is_empty() {
-                issues.add(format!("{at}/{field}"), "a state id must not be empty");
+                issues.add(
+                    format!("{}/{field}", t.at()),
+                    "a state id must not be empty",
+                );
             }
         }
-        let transition_cost = issues.costs(t.cost, &at);
+        let transition_cost = match t.cost {
+            Some(cost) => issues.costs(Some(cost), &t.at()),
+            None => BTreeMap::new(),
+        };
         if t.from.is_empty() || t.to.is_empty() {
             continue;
         }
@@ -421,22 +437,25 @@ pub fn validate(
                 (RowKind::Weight, weight)
             }
             _ => {
-                issues.add(at, "give exactly one of `probability` or `weight`");
+                issues.add(t.at(), "give exactly one of `probability` or `weight`");
                 continue;
             }
         };
-        let row = rows.entry(from).or_default();
+        if rows.len() <= from {
+            rows.resize_with(from + 1, || None);
+        }
+        let row = rows[from].get_or_insert_with(Row::default);
         match row.kind {
             None => row.kind = Some((kind, k)),
             Some((first, first_at)) if first != kind => {
                 issues.add(
-                    at.clone(),
+                    t.at(),
                     format!(
                         "transitions out of '{}' mix {} (first at {}) \
                          and {}; use one kind per state",
                         t.from,
                         first.name(),
-                        inputs[first_at].at,
+                        inputs[first_at].at(),
                         kind.name()
                     ),
                 );
@@ -488,7 +507,7 @@ pub fn validate(
     let mut weighted_costs: Vec<BTreeMap<String, (Dual, Dual)>> = Vec::new();
     for (state, id) in ids.iter().enumerate() {
         row_start.push(targets.len());
-        let Some(row) = rows.remove(&state) else {
+        let Some(row) = rows.get_mut(state).and_then(Option::take) else {
             absorbing[state] = true;
             continue;
         };
@@ -513,7 +532,7 @@ pub fn validate(
         for (value, _) in row.targets.values() {
             total.add_assign(value);
         }
-        let row_at = inputs[first_at].at.clone();
+        let row_at = inputs[first_at].at();
         let sources = || {
             let mut all: Vec<usize> = row.targets.values().flat_map(|(_, s)| s.clone()).collect();
             all.sort_unstable();

@@ -82,18 +82,50 @@ fn parse_decimal(text: &str) -> Result<BigRational, String> {
             }
         }
     };
+    exponent -= fraction.len() as i64;
+    if let Some(value) = small_decimal(whole, fraction, exponent, negative) {
+        return Ok(value);
+    }
     let digits = format!("{whole}{fraction}");
     let mut numerator: BigInt = digits.parse().map_err(|_| not_a_number())?;
     if negative {
         numerator = -numerator;
     }
-    exponent -= fraction.len() as i64;
     let scale = BigInt::from(10).pow(exponent.unsigned_abs() as u32);
     Ok(if exponent >= 0 {
         BigRational::from_integer(numerator * scale)
     } else {
         BigRational::new(numerator, scale)
     })
+}
+
+/// `±digits × 10^exponent` without big-number arithmetic when the digits fit a `u64` and the
+/// power of ten does too (the common case: short decimals), already in lowest terms.
+fn small_decimal(
+    whole: &str,
+    fraction: &str,
+    exponent: i64,
+    negative: bool,
+) -> Option<BigRational> {
+    if whole.len() + fraction.len() > 18 || !(-19..=19).contains(&exponent) {
+        return None;
+    }
+    let mut mantissa: u64 = 0;
+    for b in whole.bytes().chain(fraction.bytes()) {
+        mantissa = mantissa * 10 + u64::from(b - b'0');
+    }
+    let power = 10u64.pow(exponent.unsigned_abs() as u32);
+    let (numerator, denominator) = if exponent >= 0 {
+        (u128::from(mantissa) * u128::from(power), 1u128)
+    } else {
+        let common = num_integer::gcd(mantissa, power);
+        (u128::from(mantissa / common), u128::from(power / common))
+    };
+    let numerator = BigInt::from(numerator);
+    Some(BigRational::new_raw(
+        if negative { -numerator } else { numerator },
+        BigInt::from(denominator),
+    ))
 }
 
 /// The exact text of a rational: `"n"` for integers, `"n/d"` otherwise (lowest terms).
@@ -111,6 +143,15 @@ pub fn exact_text(value: &BigRational) -> String {
 #[must_use]
 pub fn to_f64(value: &BigRational) -> f64 {
     use num_traits::ToPrimitive;
+    // Both parts exact in a double: one correctly rounded division.
+    const EXACT_IN_DOUBLE: u64 = 1 << 53;
+    if value.numer().bits() <= 53 && value.denom().bits() <= 53 {
+        if let (Some(n), Some(d)) = (value.numer().to_i64(), value.denom().to_u64()) {
+            if n.unsigned_abs() <= EXACT_IN_DOUBLE && d <= EXACT_IN_DOUBLE {
+                return n as f64 / d as f64;
+            }
+        }
+    }
     match value.to_f64() {
         Some(v) if v.is_finite() => v,
         Some(v) if v > 0.0 => f64::MAX,

@@ -80,6 +80,12 @@ impl Budget {
         self.started.elapsed()
     }
 
+    /// Time left before the deadline.
+    #[must_use]
+    pub fn remaining(&self) -> Duration {
+        self.deadline.saturating_duration_since(Instant::now())
+    }
+
     /// Fails once the deadline has passed.
     ///
     /// # Errors

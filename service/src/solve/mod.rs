@@ -11,8 +11,8 @@
 //! Each is one sparse solve with a right-hand side; the inverse is never formed.
 
 pub mod budget;
-pub mod distribution;
 pub mod direct;
+pub mod distribution;
 pub mod elimination;
 pub mod engine;
 pub mod krylov;
@@ -38,9 +38,13 @@ use engine::LinearSolver;
 use scalar::Scalar;
 use sensitivity::{differentiate, elasticity, Perturbation};
 
-/// Cost model of exact solving used by `auto`: seconds per (factor entry x transient state),
-/// fitted on the 2-core reference machine in a release build (see DEVELOPERS.md, "Exact or float").
-pub const EXACT_SECONDS_PER_ENTRY_STATE: f64 = 3e-6;
+/// Cost model of exact solving used by `auto`: seconds per operation of the factorisation modulo
+/// a prime, fitted on the 2-core reference machine in a release build (see DEVELOPERS.md).
+pub const EXACT_SECONDS_PER_FACTOR_OPERATION: f64 = 3e-10;
+
+/// Cost model of exact solving used by `auto`: seconds per (factor entry x transient state) of
+/// lifting one right-hand side, reconstruction and checking included.
+pub const EXACT_SECONDS_PER_LIFTED_ENTRY_STATE: f64 = 8e-9;
 
 /// Largest estimated relative error, or miss of a probability bound, that a float answer may
 /// have without being flagged.
@@ -122,7 +126,7 @@ pub fn solve(chain: &Chain, plan: &Plan, budget: &Budget) -> Result<SolveRespons
         Arithmetic::Float => verified_float(chain, &structure, plan, budget),
         Arithmetic::Auto => {
             let trial = budget.share(AUTO_EXACT_BUDGET_SHARE);
-            let predicted = predicted_exact_seconds(chain, &structure, budget)?;
+            let predicted = predicted_exact_seconds(chain, &structure, plan, budget)?;
             if predicted > trial.limit().as_secs_f64() {
                 return verified_float(chain, &structure, plan, budget);
             }
@@ -162,8 +166,11 @@ fn verified_float(
     if !float.failed_verification {
         return Ok(float.response);
     }
-    let remaining = budget.limit().saturating_sub(budget.elapsed()).as_secs_f64();
-    if predicted_exact_seconds(chain, structure, budget)? < remaining / 2.0 {
+    let remaining = budget
+        .limit()
+        .saturating_sub(budget.elapsed())
+        .as_secs_f64();
+    if predicted_exact_seconds(chain, structure, plan, budget)? < remaining / 2.0 {
         let until =
             (budget.elapsed().as_secs_f64() + 0.75 * remaining) / budget.limit().as_secs_f64();
         match run::<BigRational>(chain, structure, plan, &budget.share(until)) {
@@ -267,18 +274,46 @@ fn check_reported(reported: usize, per_start: usize, starts: usize) -> Result<()
     Ok(())
 }
 
-/// Predicts the seconds an exact solve takes, from a float factorisation's fill (cheap next to
-/// the exact one): exact numbers grow by a few bits per transient state, so the cost is roughly
-/// `factor entries x transient states x` [`EXACT_SECONDS_PER_ENTRY_STATE`].
+/// Predicts the seconds an exact solve takes, from symbolic analysis alone (no numeric work).
+///
+/// p-adic lifting factors `A` once modulo a word-size prime, about `entries² / n` operations
+/// for `entries` factor entries, then lifts each right-hand side one word at a time; answers
+/// carry a few bits per transient state, so each system costs about `entries × n` word
+/// operations. The constants were fitted on the 2-core reference machine (see DEVELOPERS.md).
 fn predicted_exact_seconds(
     chain: &Chain,
     structure: &Structure,
+    plan: &Plan,
     budget: &Budget,
 ) -> Result<f64, SolveError> {
-    let system = linear_system::<f64>(chain, structure, budget)?;
-    let factors = elimination::Factors::new(system.matrix, budget)?;
     let n = structure.transient.len();
-    Ok(factors.entries() as f64 * n as f64 * EXACT_SECONDS_PER_ENTRY_STATE)
+    if n == 0 {
+        return Ok(0.0);
+    }
+    let system = linear_system::<f64>(chain, structure, budget)?;
+    let matrix = sparse::Csr::from_rows(&system.matrix);
+    let bound = direct::level_fill_bound(&matrix);
+    // The ordering costs about a nanosecond per entry it finds; past this, exact is hopeless.
+    let entries =
+        if bound * engine::ORDERING_SECONDS_PER_ENTRY > 0.05 * budget.limit().as_secs_f64() {
+            bound
+        } else {
+            direct::analyse(&matrix).predicted_entries as f64
+        };
+    let outcomes = structure.absorbing.len() + structure.trap_classes.len();
+    let mut systems = outcomes as f64;
+    if plan.report.contains(&Report::Steps) || plan.report.contains(&Report::Distribution) {
+        systems += 2.0 + structure.absorbing.len() as f64;
+    }
+    if plan.report.contains(&Report::Visits) {
+        systems += 1.0;
+    }
+    if plan.report.contains(&Report::Sensitivity) {
+        systems *= 1.0 + chain.parameters.len() as f64;
+    }
+    let n = n as f64;
+    Ok(entries * entries / n * EXACT_SECONDS_PER_FACTOR_OPERATION
+        + entries * n * systems * EXACT_SECONDS_PER_LIFTED_ENTRY_STATE)
 }
 
 /// The solved systems, in one arithmetic.
@@ -468,7 +503,7 @@ fn run<S: Scalar>(
     let wants_visits = plan.report.contains(&Report::Visits);
     // Visits from a start s are sᵀ N, so d/dθ is (dsᵀ + vᵀ dQ) N: one transposed solve each.
     let visits_from = |start: &[(usize, S)],
-                           start_gradients: &[Vec<S>]|
+                       start_gradients: &[Vec<S>]|
      -> Result<Option<Visits<S>>, SolveError> {
         if !wants_visits {
             return Ok(None);
@@ -553,13 +588,7 @@ fn run<S: Scalar>(
     let (error_estimate, doubt) = if S::EXACT {
         (0.0, None)
     } else {
-        // ‖N‖∞ = max expected steps, since N ≥ 0 (I - Q is an M-matrix).
-        let fundamental_norm = if wants_steps {
-            max_abs(&solution.at.steps)
-        } else {
-            max_abs(&solver.solve(vec![S::one(); n], budget)?)
-        };
-        let estimate = fundamental_norm * engine.relative_backward_error;
+        let estimate = solver.error_estimate(budget)?;
         (estimate, solution.verify(estimate))
     };
     if let Some(doubt) = &doubt {
@@ -594,10 +623,6 @@ fn run<S: Scalar>(
 struct Run {
     response: SolveResponse,
     failed_verification: bool,
-}
-
-fn max_abs<S: Scalar>(values: &[S]) -> f64 {
-    values.iter().fold(0.0, |m, v| m.max(v.to_f64().abs()))
 }
 
 /// The linear systems of a chain: `A = I - Q` and the right-hand sides `R`.
@@ -1562,8 +1587,7 @@ impl<S: Scalar> Solution<'_, S> {
         }
         if error_estimate > VERIFICATION_TOLERANCE || !error_estimate.is_finite() {
             failures.push(format!(
-                "the estimated relative error of the solution is {error_estimate:.1e} (residual \
-                 times the largest expected number of steps)"
+                "the estimated relative error of the solution is {error_estimate:.1e}"
             ));
         }
         (!failures.is_empty()).then(|| {
