@@ -44,7 +44,7 @@ RESULTS = os.path.join(HERE, "results.md")
 # Seconds allowed for each measurement (one in-process run, one HTTP request, one reference).
 CASE_TIMEOUT_S = 240
 # Measurements faster than this are repeated (three runs in all) and the fastest is kept.
-REPEAT_BELOW_S = 0.5
+REPEAT_BELOW_S = 2.0
 REPEATS = 3
 # Above these sizes a reference is skipped (see `reference_plan`).
 SPLU_RANDOM_MAX = 20_000
@@ -642,6 +642,11 @@ def versions():
     }
 
 
+def load_average():
+    with open("/proc/loadavg") as f:
+        return " ".join(f.read().split()[:3])
+
+
 def python_baseline_mb():
     """Peak memory of a Python process that only imports the reference libraries."""
     code = ("import numpy, scipy.sparse.linalg, flint\n"
@@ -666,7 +671,9 @@ def write_results(path, rows, notes, machine, elapsed_s, finished):
         f"Machine: {m['cpu']}, {m['cores']} cores, {m['ram_gib']:.1f} GiB RAM, {m['os']}. "
         f"{m['rustc']}, release build. Python {m['python']}, numpy {m['numpy']}, "
         f"scipy {m['scipy']}, python-flint {m['flint']}. A Python process that only imports "
-        f"these libraries peaks at {megabytes(m['python_mb'])} MB.",
+        f"these libraries peaks at {megabytes(m['python_mb'])} MB. Load average (1, 5, 15 "
+        f"minutes): {m.get('load', load_average() + ' now')}; other work on the machine "
+        "during the run makes the times noisier.",
         "",
         "## Chains",
         "",
@@ -695,7 +702,7 @@ def write_results(path, rows, notes, machine, elapsed_s, finished):
         "and conditional mean steps (a second batch of as many).",
         "- **HTTP wall s**: the same body posted to the release server on loopback, from sending "
         "to the last byte of the answer. **HTTP overhead %** = wall / (parse + validate + solve "
-        "in-process) - 1.",
+        "in-process) - 1; the two are separate runs, so timing noise can make it negative.",
         "- **method**: the engine's method from the answer's `solver.method`, shortened.",
         "- **reference**, **reference s**, **reference peak MB**: the reference library on I - Q "
         "with the absorption columns and the ones vector as right-hand sides, timed from the "
@@ -744,6 +751,7 @@ def main():
         return
 
     began = time.perf_counter()
+    load_before = load_average()
     for binary in (SERVER, IN_PROCESS):
         if not os.access(binary, os.X_OK):
             sys.exit(f"{binary} is missing: run bench/run, which builds it")
@@ -825,6 +833,7 @@ def main():
     finally:
         server.stop()
     elapsed = time.perf_counter() - began
+    machine["load"] = f"{load_before} before the run, {load_average()} after"
     write_results(args.output, rows, notes, machine, elapsed, True)
     print()
     for target, measured, verdict in targets(rows):
