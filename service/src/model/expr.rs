@@ -56,7 +56,7 @@ impl Dual {
 impl Dual {
     /// Adds another dual in place.
     pub fn add_assign(&mut self, other: &Dual) {
-        self.value += &other.value;
+        self.value = super::value::add(&self.value, &other.value);
         for (g, h) in self.gradient.iter_mut().zip(&other.gradient) {
             *g += h;
         }
@@ -81,7 +81,7 @@ impl Dual {
     pub fn ratio(&self, total: &Dual) -> Dual {
         let square = &total.value * &total.value;
         Dual {
-            value: &self.value / &total.value,
+            value: super::value::divide(&self.value, &total.value),
             gradient: self
                 .gradient
                 .iter()

@@ -61,10 +61,10 @@ impl Issues {
 
     /// Evaluates a number or an expression, recording an issue (and returning `None`) when it
     /// is neither.
-    fn value(&mut self, value: &Value, pointer: String) -> Option<Dual> {
+    fn value(&mut self, value: &Value, pointer: impl FnOnce() -> String) -> Option<Dual> {
         let parameters = self.names.len();
         let result = match value {
-            Value::Number(n) => parse_exact(&n.to_string()).map(|v| Dual::constant(v, parameters)),
+            Value::Number(n) => parse_exact(n.as_str()).map(|v| Dual::constant(v, parameters)),
             Value::Text(text) => match parse_exact(text) {
                 Ok(v) => Ok(Dual::constant(v, parameters)),
                 // A numeral that is out of bounds says so; anything else may be an expression.
@@ -85,22 +85,23 @@ impl Issues {
         match result {
             Ok(dual) => Some(dual),
             Err(detail) => {
-                self.add(pointer, detail);
+                self.add(pointer(), detail);
                 None
             }
         }
     }
 
-    /// Evaluates a probability in [0, 1].
-    fn probability(&mut self, value: &Value, pointer: String) -> Option<Dual> {
-        let p = self.value(value, pointer.clone())?;
-        if p.value.is_negative() || p.value > BigRational::one() {
+    /// Evaluates a probability in [0, 1]. The pointer is written only when there is a problem:
+    /// big tables have millions of values.
+    fn probability(&mut self, value: &Value, pointer: impl Fn() -> String) -> Option<Dual> {
+        let p = self.value(value, &pointer)?;
+        if p.value.is_negative() || p.value.numer() > p.value.denom() {
             let detail = format!(
                 "a probability must lie in [0, 1]; got {}{}",
                 exact_text(&p.value),
                 self.at_values()
             );
-            self.add(pointer, detail);
+            self.add(pointer(), detail);
             return None;
         }
         Some(p)
@@ -114,7 +115,7 @@ impl Issues {
             if dimension.trim().is_empty() {
                 self.add(at.clone(), "a cost dimension needs a non-empty name");
             }
-            if let Some(value) = self.value(amount, at) {
+            if let Some(value) = self.value(amount, || at) {
                 amounts.insert(dimension.clone(), value);
             }
         }
@@ -357,11 +358,14 @@ pub fn validate(
     let parameter_count = issues.names.len();
     let mut ids: Vec<String> = Vec::new();
     let mut index: HashMap<String, usize> = HashMap::new();
+    // Looked up by `&str` first: allocating a key per transition costs more than the lookup.
     let mut intern = |id: &str, ids: &mut Vec<String>| -> usize {
-        *index.entry(id.to_owned()).or_insert_with(|| {
-            ids.push(id.to_owned());
-            ids.len() - 1
-        })
+        if let Some(&i) = index.get(id) {
+            return i;
+        }
+        ids.push(id.to_owned());
+        index.insert(id.to_owned(), ids.len() - 1);
+        ids.len() - 1
     };
 
     // Declared states, in order.
@@ -418,10 +422,10 @@ pub fn validate(
         let (kind, value) = match (t.probability, t.weight) {
             (Some(p), None) => (
                 RowKind::Probability,
-                issues.probability(p, t.value_at("probability")),
+                issues.probability(p, || t.value_at("probability")),
             ),
             (None, Some(w)) => {
-                let weight = issues.value(w, t.value_at("weight"));
+                let weight = issues.value(w, || t.value_at("weight"));
                 let weight = weight.filter(|w| {
                     let ok = !w.value.is_negative();
                     if !ok {
@@ -469,14 +473,16 @@ pub fn validate(
             continue;
         };
         {
-            let entry = row.targets.entry(to).or_insert_with(|| {
-                (
-                    Dual::constant(BigRational::zero(), parameter_count),
-                    Vec::new(),
-                )
-            });
-            entry.0.add_assign(&value);
-            entry.1.push(k);
+            match row.targets.entry(to) {
+                std::collections::btree_map::Entry::Vacant(place) => {
+                    place.insert((value.clone(), vec![k]));
+                }
+                std::collections::btree_map::Entry::Occupied(mut place) => {
+                    let entry = place.get_mut();
+                    entry.0.add_assign(&value);
+                    entry.1.push(k);
+                }
+            }
             let costs = row.weighted_costs.entry(to).or_default();
             for (dimension, amount) in transition_cost {
                 let zero = || Dual::constant(BigRational::zero(), parameter_count);
@@ -610,7 +616,13 @@ pub fn validate(
         let mut row_costs = row.weighted_costs;
         for (target, (value, _)) in row.targets {
             if !value.value.is_zero() {
-                let probability = value.ratio(&total);
+                // A probability row that sums to exactly 1 needs no division.
+                let probability =
+                    if total.value.is_one() && total.gradient.iter().all(Zero::is_zero) {
+                        value.clone()
+                    } else {
+                        value.ratio(&total)
+                    };
                 let costs = row_costs.remove(&target).unwrap_or_default();
                 weighted_costs.push(
                     costs
@@ -727,7 +739,7 @@ fn validate_start(start: &StartSpec, ids: &[String], issues: &mut Issues) -> Vec
             let before = issues.found.len();
             for (id, value) in weights {
                 let at = format!("/chain/start/{}", pointer_token(id));
-                let p = issues.probability(value, at.clone());
+                let p = issues.probability(value, || at.clone());
                 match find(id) {
                     None => issues.add(at, unknown(id)),
                     Some(i) => {

@@ -128,6 +128,47 @@ fn small_decimal(
     ))
 }
 
+/// Numerator and denominator as machine integers, when both fit in 63 bits.
+fn small_parts(value: &BigRational) -> Option<(i128, i128)> {
+    use num_traits::ToPrimitive;
+    Some((
+        i128::from(value.numer().to_i64()?),
+        i128::from(value.denom().to_i64()?),
+    ))
+}
+
+/// `n / d` in lowest terms (`d > 0`).
+fn from_parts(n: i128, d: i128) -> BigRational {
+    let common = num_integer::gcd(n, d);
+    BigRational::new_raw(BigInt::from(n / common), BigInt::from(d / common))
+}
+
+/// `a + b`, in machine integers when the parts are small (the common case of short decimals and
+/// small weights), which spares big-number gcds.
+#[must_use]
+pub fn add(a: &BigRational, b: &BigRational) -> BigRational {
+    match (small_parts(a), small_parts(b)) {
+        (Some((an, ad)), Some((bn, bd))) => from_parts(an * bd + bn * ad, ad * bd),
+        _ => a + b,
+    }
+}
+
+/// `a / b` for `b ≠ 0`, in machine integers when the parts are small.
+#[must_use]
+pub fn divide(a: &BigRational, b: &BigRational) -> BigRational {
+    match (small_parts(a), small_parts(b)) {
+        (Some((an, ad)), Some((bn, bd))) => {
+            let (n, d) = (an * bd, ad * bn);
+            if d < 0 {
+                from_parts(-n, -d)
+            } else {
+                from_parts(n, d)
+            }
+        }
+        _ => a / b,
+    }
+}
+
 /// The exact text of a rational: `"n"` for integers, `"n/d"` otherwise (lowest terms).
 #[must_use]
 pub fn exact_text(value: &BigRational) -> String {

@@ -257,6 +257,10 @@ pub const ORDERING_SECONDS_PER_ENTRY: f64 = 1e-9;
 /// Share of the remaining budget the ordering may take by the cheap bound before it is skipped.
 pub const ORDERING_BUDGET_SHARE: f64 = 0.1;
 
+/// Most seconds the ordering may take by the cheap bound, however long the budget: a fill that
+/// would take longer to predict is far past what the direct solver could use.
+pub const MAX_ORDERING_SECONDS: f64 = 1.0;
+
 /// Relative residual the Krylov method iterates to.
 pub const ITERATIVE_TOLERANCE: f64 = 1e-12;
 
@@ -280,9 +284,9 @@ pub fn float(
     // upper bound says the fill (and so the ordering's own time) is out of reach.
     let bound = direct::level_fill_bound(&matrix);
     let ordering_seconds = bound * ORDERING_SECONDS_PER_ENTRY;
-    if matrix.n >= ALWAYS_DIRECT_BELOW
-        && ordering_seconds > ORDERING_BUDGET_SHARE * budget.remaining().as_secs_f64()
-    {
+    let ordering_allowance =
+        (ORDERING_BUDGET_SHARE * budget.remaining().as_secs_f64()).min(MAX_ORDERING_SECONDS);
+    if matrix.n >= ALWAYS_DIRECT_BELOW && ordering_seconds > ordering_allowance {
         return iterative(matrix, bound, budget);
     }
     let analysis = direct::analyse(&matrix);
