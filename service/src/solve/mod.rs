@@ -44,7 +44,7 @@ pub const EXACT_SECONDS_PER_FACTOR_OPERATION: f64 = 3e-10;
 
 /// Cost model of exact solving used by `auto`: seconds per (factor entry x transient state) of
 /// lifting one right-hand side, reconstruction and checking included.
-pub const EXACT_SECONDS_PER_LIFTED_ENTRY_STATE: f64 = 8e-9;
+pub const EXACT_SECONDS_PER_LIFTED_ENTRY_STATE: f64 = 2e-8;
 
 /// Largest estimated relative error, or miss of a probability bound, that a float answer may
 /// have without being flagged.
@@ -334,10 +334,9 @@ struct Vectors<S> {
     outcome: Vec<Vec<S>>,
     /// Expected steps from each transient position (to absorption or a trap).
     steps: Vec<S>,
-    /// `N t`, from which the second moment `2 N t - t` follows.
+    /// `N t`, from which the second moment `2 N t - t` follows (formed only where reported:
+    /// exact numbers here can have thousands of digits).
     steps_twice: Vec<S>,
-    /// Second moment of the number of steps.
-    second_moment: Vec<S>,
     /// `E[T; ends in a]` for each absorbing outcome.
     steps_and_outcome: Vec<Vec<S>>,
     /// Accumulated costs, one per cost dimension (when costs are reported).
@@ -351,7 +350,6 @@ impl<S: Scalar> Vectors<S> {
             outcome,
             steps: Vec::new(),
             steps_twice: Vec::new(),
-            second_moment: Vec::new(),
             steps_and_outcome: Vec::new(),
             costs: Vec::new(),
         }
@@ -365,7 +363,6 @@ impl<S: Scalar> Vectors<S> {
         steps_and_outcome: Vec<Vec<S>>,
     ) -> Self {
         Vectors {
-            second_moment: second_moment(&steps_twice, &steps),
             outcome,
             steps,
             steps_twice,
@@ -902,15 +899,6 @@ fn default_horizon(moments: Option<(f64, f64)>) -> u64 {
     }
 }
 
-/// `2 N t - t` from `N t` and `t`.
-fn second_moment<S: Scalar>(steps_twice: &[S], steps: &[S]) -> Vec<S> {
-    steps_twice
-        .iter()
-        .zip(steps)
-        .map(|(w, t)| w.add(w).sub(t))
-        .collect()
-}
-
 impl<S: Scalar> Solution<'_, S> {
     /// Probability of ending in outcome `k` when starting in `state`, from `vectors` (the
     /// values, or a derivative: absorbing and trapped starts have constant outcomes).
@@ -945,6 +933,12 @@ impl<S: Scalar> Solution<'_, S> {
                 None => sum,
             }
         })
+    }
+
+    /// The second moment of the steps from a start distribution: `sᵀ(2 N t - t)`.
+    fn second_moment(&self, start: &[(usize, S)], vectors: &Vectors<S>) -> S {
+        let twice = self.weighted(start, &vectors.steps_twice);
+        twice.add(&twice).sub(&self.weighted(start, &vectors.steps))
     }
 
     /// `d/dθ Σ s_i v_i = Σ ds_i v_i + s_i dv_i`.
@@ -1022,7 +1016,7 @@ impl<S: Scalar> Solution<'_, S> {
             S::zero()
         };
         let second = if wants_steps {
-            self.weighted(start, &self.at.second_moment)
+            self.second_moment(start, &self.at)
         } else {
             S::zero()
         };
@@ -1182,8 +1176,9 @@ impl<S: Scalar> Solution<'_, S> {
             }
             if wants_steps {
                 let d_mean = self.weighted_derivative(start, &ds, &self.at.steps, &d.steps);
-                let d_second =
-                    self.weighted_derivative(start, &ds, &self.at.second_moment, &d.second_moment);
+                let d_twice =
+                    self.weighted_derivative(start, &ds, &self.at.steps_twice, &d.steps_twice);
+                let d_second = d_twice.add(&d_twice).sub(&d_mean);
                 let d_variance = d_second.sub(&mean.add(&mean).mul(&d_mean));
                 report.steps_mean = Some(entry(Some(&mean), finite.then_some(d_mean)));
                 report.steps_variance = Some(entry(Some(&variance), finite.then_some(d_variance)));
@@ -1311,7 +1306,7 @@ impl<S: Scalar> Solution<'_, S> {
             .any(|k| !self.outcome_mass(start, &no_gradients, k, None).is_zero());
         let moments = (!trapped).then(|| {
             let mean = self.weighted(start, &self.at.steps);
-            let second = self.weighted(start, &self.at.second_moment);
+            let second = self.second_moment(start, &self.at);
             (mean.to_f64(), second.sub(&mean.mul(&mean)).to_f64())
         });
         let horizon = plan.horizon.unwrap_or_else(|| default_horizon(moments));
