@@ -51,6 +51,9 @@ SPLU_RANDOM_MAX = 20_000
 FLINT_MAX_TRANSIENT = 2_000
 
 MIB = 1024 * 1024
+# References run with single-threaded BLAS: on this shared 2-core machine OpenBLAS's worker
+# threads made bicgstab up to five times slower whenever anything else was running.
+REFERENCE_ENV = dict(os.environ, OPENBLAS_NUM_THREADS="1", OMP_NUM_THREADS="1")
 
 
 # ---------------------------------------------------------------------------------------------
@@ -464,7 +467,8 @@ def run_reference(name, path):
     def measure():
         try:
             done = subprocess.run([sys.executable, os.path.abspath(__file__), "--reference", name,
-                                   path], capture_output=True, text=True, timeout=CASE_TIMEOUT_S)
+                                   path], capture_output=True, text=True, timeout=CASE_TIMEOUT_S,
+                                  env=REFERENCE_ENV)
         except subprocess.TimeoutExpired:
             return {"ok": False, "error": f"timeout ({CASE_TIMEOUT_S} s)"}
         lines = [l for l in done.stdout.splitlines() if l.startswith("{")]
@@ -712,7 +716,8 @@ def write_results(path, rows, notes, machine, elapsed_s, finished):
         "`splu(A, permc_spec=\"MMD_AT_PLUS_A\")` then one solve with all right-hand sides (its "
         "fill, (nnz L + nnz U) / nnz A, in brackets). "
         "`scipy bicgstab`: no preconditioner, `rtol=1e-12`, one call per right-hand side. "
-        "`python-flint`: `fmpq_mat.solve` on the exact rationals.",
+        "`python-flint`: `fmpq_mat.solve` on the exact rationals. References run with "
+        "single-threaded BLAS (`OPENBLAS_NUM_THREADS=1`), which was the faster setting here.",
         "- **engine/reference time**: engine solve s / reference s (below 1: the engine is "
         "faster). **engine/reference peak**: engine peak MB / reference peak MB.",
         "- **agreement**: the service's HTTP answer from the start state against the "

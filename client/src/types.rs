@@ -692,7 +692,7 @@ pub struct SolverInfo {
     pub iterations: usize,
     /// Estimated bound on the relative error of the solution vectors: the residual, with the
     /// rounding of the matrix itself, times `‖N‖∞` (the largest expected number of steps); 0 when
-    /// exact. Float answers whose estimate exceeds 1e-9 carry a warning.
+    /// exact. Float answers whose estimate exceeds 1e-6 carry a warning.
     #[serde(default)]
     pub error_estimate: f64,
 }

@@ -2,6 +2,7 @@
 //! pointer rather than stopping at the first.
 
 use std::collections::{BTreeMap, BTreeSet, HashMap};
+use std::hash::BuildHasherDefault;
 
 use num_rational::BigRational;
 use num_traits::{One, Signed, Zero};
@@ -208,6 +209,30 @@ impl RowKind {
     }
 }
 
+/// FNV-1a: state ids are short strings from the request, looked up twice per transition, and the
+/// standard hasher's resistance to chosen collisions costs more than it protects here (a
+/// collision-heavy request is still bounded by the body limit and the budget).
+#[derive(Default)]
+struct IdHasher(u64);
+
+impl std::hash::Hasher for IdHasher {
+    fn finish(&self) -> u64 {
+        self.0
+    }
+
+    fn write(&mut self, bytes: &[u8]) {
+        let mut hash = if self.0 == 0 {
+            0xcbf2_9ce4_8422_2325
+        } else {
+            self.0
+        };
+        for &b in bytes {
+            hash = (hash ^ u64::from(b)).wrapping_mul(0x0100_0000_01b3);
+        }
+        self.0 = hash;
+    }
+}
+
 /// Everything said about the transitions out of one state.
 #[derive(Default)]
 struct Row {
@@ -357,7 +382,7 @@ pub fn validate(
     issues.parameters(&spec.parameters, overrides);
     let parameter_count = issues.names.len();
     let mut ids: Vec<String> = Vec::new();
-    let mut index: HashMap<String, usize> = HashMap::new();
+    let mut index: HashMap<String, usize, BuildHasherDefault<IdHasher>> = HashMap::default();
     // Looked up by `&str` first: allocating a key per transition costs more than the lookup.
     let mut intern = |id: &str, ids: &mut Vec<String>| -> usize {
         if let Some(&i) = index.get(id) {

@@ -46,9 +46,15 @@ pub const EXACT_SECONDS_PER_FACTOR_OPERATION: f64 = 3e-10;
 /// lifting one right-hand side, reconstruction and checking included.
 pub const EXACT_SECONDS_PER_LIFTED_ENTRY_STATE: f64 = 2e-8;
 
-/// Largest estimated relative error, or miss of a probability bound, that a float answer may
-/// have without being flagged.
+/// Largest miss of a probability bound (below 0, above 1, or of a row summing to 1) that a float
+/// answer may have without being flagged.
 pub const VERIFICATION_TOLERANCE: f64 = 1e-9;
+
+/// Largest estimated relative error of the solution vectors that a float answer may have without
+/// being flagged. The estimate is a first-order bound, and grows with the expected time to
+/// absorption (a million-state walk reaches 1e-8 while agreeing with other solvers to 1e-10), so
+/// it is flagged only where digits that matter may be wrong.
+pub const ERROR_ESTIMATE_TOLERANCE: f64 = 1e-6;
 
 /// Largest horizon a request may ask for.
 pub const MAX_HORIZON: u64 = 1_000_000;
@@ -1580,7 +1586,7 @@ impl<S: Scalar> Solution<'_, S> {
         if negative_steps {
             failures.push("some expected steps came out negative".to_owned());
         }
-        if error_estimate > VERIFICATION_TOLERANCE || !error_estimate.is_finite() {
+        if error_estimate > ERROR_ESTIMATE_TOLERANCE || !error_estimate.is_finite() {
             failures.push(format!(
                 "the estimated relative error of the solution is {error_estimate:.1e}"
             ));
