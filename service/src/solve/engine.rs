@@ -178,6 +178,12 @@ pub fn exact(
     if rows.len() < LIFTING_FROM {
         return Ok(Box::new(Eliminated::new(rows, budget)?));
     }
+    // Lifting keeps a few dense n x n copies of word-size numbers when the matrix is dense.
+    let n = rows.len() as f64;
+    let entries = rows.iter().map(Vec::len).sum::<usize>() as f64;
+    if entries > 0.2 * n * n {
+        budget.reserve(4.0 * 8.0 * n * n, "the dense factors modulo a prime")?;
+    }
     match PadicSolver::new(&rows, &interrupted(budget)) {
         Ok(solver) => Ok(Box::new(Lifted {
             solver,
@@ -320,7 +326,8 @@ pub struct FloatEngine {
     transposed: Csr,
     method: FloatMethod,
     tally: Tally,
-    /// Σ over solved systems of `(|r| + 2u(|A||x| + |b|)) / ‖x‖∞`, for `A` and for `Aᵀ`.
+    /// Componentwise maximum over solved systems of `(|r| + 2u(|A||x| + |b|)) / ‖x‖∞`, for `A`
+    /// and for `Aᵀ`.
     error_terms: RefCell<[Vec<f64>; 2]>,
 }
 
@@ -465,10 +472,10 @@ impl FloatEngine {
         Ok(x)
     }
 
-    /// Adds a solved system's error terms. With `N = A⁻¹ ≥ 0` (an M-matrix's inverse), the
+    /// Takes in a solved system's error terms. With `N = A⁻¹ ≥ 0` (an M-matrix's inverse), the
     /// error of `x` is `N r` exactly, and rounding `A` and `b` entry by entry (relative `u`)
-    /// moves `x` by at most `u N (|A||x| + |b|)` to first order: one solve with the sum of these
-    /// terms bounds every solution's error at once (componentwise, so a chain with a long
+    /// moves `x` by at most `u N (|A||x| + |b|)` to first order: since `N ≥ 0`, one solve with
+    /// the componentwise maximum of these terms bounds every solution's error at once (componentwise, so a chain with a long
     /// expected time but exactly formed diagonal is not flagged for no reason).
     fn note_error(&self, matrix: &Csr, x: &[f64], b: &[f64], r: &[f64], transposed: bool) {
         let scale = norm(x);
@@ -482,7 +489,8 @@ impl FloatEngine {
         }
         for (i, total) in sum.iter_mut().enumerate() {
             let magnitude: f64 = matrix.row(i).map(|(j, a)| a.abs() * x[j].abs()).sum();
-            *total += (r[i].abs() + 2.0 * UNIT_ROUNDOFF * (magnitude + b[i].abs())) / scale;
+            let term = (r[i].abs() + 2.0 * UNIT_ROUNDOFF * (magnitude + b[i].abs())) / scale;
+            *total = total.max(term);
         }
     }
 }
@@ -544,8 +552,15 @@ impl LinearSolver<f64> for FloatEngine {
     }
 }
 
+/// `‖v‖∞`, NaN when any entry is NaN (so a broken correction is never taken for a small one).
 fn norm(v: &[f64]) -> f64 {
-    v.iter().fold(0.0, |m, x| m.max(x.abs()))
+    v.iter().fold(0.0, |m: f64, x| {
+        if x.is_nan() || m.is_nan() {
+            f64::NAN
+        } else {
+            m.max(x.abs())
+        }
+    })
 }
 
 /// `b - A x`, each entry accumulated in double-double (error-free products by fused

@@ -129,7 +129,7 @@ pub fn solve(chain: &Chain, plan: &Plan, budget: &Budget) -> Result<SolveRespons
     check_size(chain, &structure, plan)?;
     match plan.arithmetic {
         Arithmetic::Exact => Ok(run::<BigRational>(chain, &structure, plan, budget)?.response),
-        Arithmetic::Float => verified_float(chain, &structure, plan, budget),
+        Arithmetic::Float => Ok(run::<f64>(chain, &structure, plan, budget)?.response),
         Arithmetic::Auto => {
             let trial = budget.share(AUTO_EXACT_BUDGET_SHARE);
             let predicted = predicted_exact_seconds(chain, &structure, plan, budget)?;
@@ -160,8 +160,9 @@ pub fn solve(chain: &Chain, plan: &Plan, budget: &Budget) -> Result<SolveRespons
     }
 }
 
-/// A float answer that passed verification, or else the exact answer when it is predicted to
-/// fit in half of the remaining budget, or else the float answer with its warning.
+/// For `auto`: a float answer that passed verification, or else the exact answer when it is
+/// predicted to fit in half of the remaining budget and finishes in time, or else the float
+/// answer with its warning (never an error once the float answer exists).
 fn verified_float(
     chain: &Chain,
     structure: &Structure,
@@ -172,25 +173,20 @@ fn verified_float(
     if !float.failed_verification {
         return Ok(float.response);
     }
-    let remaining = budget
-        .limit()
-        .saturating_sub(budget.elapsed())
-        .as_secs_f64();
-    if predicted_exact_seconds(chain, structure, plan, budget)? < remaining / 2.0 {
+    let remaining = budget.remaining().as_secs_f64();
+    let affordable = predicted_exact_seconds(chain, structure, plan, budget)
+        .is_ok_and(|seconds| seconds < remaining / 2.0);
+    if affordable {
         let until =
             (budget.elapsed().as_secs_f64() + 0.75 * remaining) / budget.limit().as_secs_f64();
-        match run::<BigRational>(chain, structure, plan, &budget.share(until)) {
-            Ok(exact) => {
-                let mut answer = exact.response;
-                answer.warnings.push(
-                    "the floating-point answer failed verification, so it was computed in \
-                     exact arithmetic instead"
-                        .to_owned(),
-                );
-                return Ok(answer);
-            }
-            Err(SolveError::BudgetExceeded { .. } | SolveError::TooLarge(_)) => {}
-            Err(other) => return Err(other),
+        if let Ok(exact) = run::<BigRational>(chain, structure, plan, &budget.share(until)) {
+            let mut answer = exact.response;
+            answer.warnings.push(
+                "the floating-point answer failed verification, so it was computed in exact \
+                 arithmetic instead"
+                    .to_owned(),
+            );
+            return Ok(answer);
         }
     }
     Ok(float.response)
@@ -402,8 +398,8 @@ fn run<S: Scalar>(
 ) -> Result<Run, SolveError> {
     let n = structure.transient.len();
     let absorbing_count = structure.absorbing.len();
-    // Exact numbers grow by a few bits per transient state (an estimate: 2 bytes per state).
-    let bytes_per_number = if S::EXACT { 32.0 + 2.0 * n as f64 } else { 8.0 };
+    // Exact numbers grow by a few bits per transient state (an estimate: 4 bits per state).
+    let bytes_per_number = if S::EXACT { 32.0 + 0.5 * n as f64 } else { 8.0 };
     budget.reserve(
         solution_numbers(chain, structure, plan) as f64 * bytes_per_number,
         "the solution vectors",
@@ -591,7 +587,8 @@ fn run<S: Scalar>(
     let (error_estimate, doubt) = if S::EXACT {
         (0.0, None)
     } else {
-        let estimate = solver.error_estimate(budget)?;
+        // An estimate the budget cannot pay for is unknown, not a reason to drop the answer.
+        let estimate = solver.error_estimate(budget).unwrap_or(f64::INFINITY);
         (estimate, solution.verify(estimate))
     };
     if let Some(doubt) = &doubt {
@@ -1586,7 +1583,9 @@ impl<S: Scalar> Solution<'_, S> {
         if negative_steps {
             failures.push("some expected steps came out negative".to_owned());
         }
-        if error_estimate > ERROR_ESTIMATE_TOLERANCE || !error_estimate.is_finite() {
+        if error_estimate.is_infinite() {
+            failures.push("its error could not be estimated within the budget".to_owned());
+        } else if error_estimate > ERROR_ESTIMATE_TOLERANCE || error_estimate.is_nan() {
             failures.push(format!(
                 "the estimated relative error of the solution is {error_estimate:.1e}"
             ));
