@@ -375,6 +375,30 @@ impl<T: Clone> Csr<T> {
     }
 }
 
+/// `lcm(acc, d)`, cheap cases first: a binary gcd of numbers with thousands of bits takes
+/// milliseconds, and the entries of one solution (the right-hand sides of a second batch) nearly
+/// always share one denominator.
+fn lcm_with(acc: BigInt, d: &BigInt) -> BigInt {
+    if d.is_one() || &acc == d || (&acc % d).is_zero() {
+        acc
+    } else {
+        acc.lcm(d)
+    }
+}
+
+/// `v · s` for an integer `s`, reducing by `gcd(s, denominator)` computed from the small side
+/// (the generic product runs binary gcds over the big denominator).
+fn scale_rational(v: &BigRational, s: &BigInt) -> BigRational {
+    if s.is_one() {
+        return v.clone();
+    }
+    let g = (v.denom() % s).gcd(s);
+    if g.is_zero() {
+        return BigRational::from_integer(v.numer() * s);
+    }
+    BigRational::new_raw(v.numer() * (s / &g), v.denom() / &g)
+}
+
 /// The integer matrix `A'` (rows of `A` times their denominators' lcm), in the width that its
 /// residual products need.
 enum IntMatrix {
@@ -1437,18 +1461,22 @@ impl PadicSolver {
         } else {
             b.iter()
                 .zip(&self.scale)
-                .map(|(v, s)| v * BigRational::from_integer(s.clone()))
+                .map(|(v, s)| scale_rational(v, s))
                 .collect()
         };
         let mut e = BigInt::one();
         for v in &scaled {
-            if !v.denom().is_one() {
-                e = e.lcm(v.denom());
-            }
+            e = lcm_with(e, v.denom());
         }
         let c: Vec<BigInt> = scaled
             .iter()
-            .map(|v| v.numer() * (&e / v.denom()))
+            .map(|v| {
+                if v.denom() == &e {
+                    v.numer().clone()
+                } else {
+                    v.numer() * (&e / v.denom())
+                }
+            })
             .collect();
 
         // Hadamard: |det A'| <= Π ‖row‖ and <= Π ‖col‖; a Cramer numerator replaces one column by
