@@ -2094,6 +2094,56 @@ fn scale_to_integers(
 
 /// Balanced base-p digits of `v`: `v = Σ v_t p^t` with `|v_t| <= p / 2`; at least one digit.
 fn balanced_digits(v: &BigInt, p: u64) -> Vec<i64> {
+    // Divides the magnitude's words by p in place (one 128-bit division per word), with no
+    // big-number allocation per digit; digits of -v are those of v negated, p being odd.
+    let mut words = v.magnitude().to_u64_digits();
+    let mut out = Vec::new();
+    let mut carry = false;
+    loop {
+        if carry {
+            let mut k = 0;
+            loop {
+                if k == words.len() {
+                    words.push(1);
+                    break;
+                }
+                let (sum, over) = words[k].overflowing_add(1);
+                words[k] = sum;
+                if !over {
+                    break;
+                }
+                k += 1;
+            }
+        }
+        while words.last() == Some(&0) {
+            words.pop();
+        }
+        if words.is_empty() {
+            break;
+        }
+        let mut remainder: u128 = 0;
+        for word in words.iter_mut().rev() {
+            let current = (remainder << 64) | u128::from(*word);
+            *word = (current / u128::from(p)) as u64;
+            remainder = current % u128::from(p);
+        }
+        let d = remainder as u64;
+        carry = d > p / 2;
+        out.push(if carry { -((p - d) as i64) } else { d as i64 });
+    }
+    if out.is_empty() {
+        out.push(0);
+    }
+    if v.sign() == Sign::Minus {
+        for digit in &mut out {
+            *digit = -*digit;
+        }
+    }
+    out
+}
+
+#[cfg(test)]
+fn balanced_digits_reference(v: &BigInt, p: u64) -> Vec<i64> {
     let pb = BigInt::from(p);
     let mut rest = v.clone();
     let mut out = Vec::new();
@@ -2549,6 +2599,34 @@ mod tests {
         for (x, r) in nums.iter().zip(&got) {
             let expect = BigRational::new(x.clone(), den.clone());
             assert_eq!((r.numer(), r.denom()), (expect.numer(), expect.denom()));
+        }
+    }
+
+    #[test]
+    fn balanced_digits_match_repeated_division() {
+        let p = (1u64 << 62) - 57;
+        let mut values = vec![
+            BigInt::zero(),
+            BigInt::one(),
+            -BigInt::one(),
+            BigInt::from(p / 2),
+            BigInt::from(p / 2 + 1),
+            BigInt::from(p),
+            -BigInt::from(p - 1),
+            BigInt::from(u64::MAX),
+        ];
+        let mut x = BigInt::from(0x9E37_79B9_7F4A_7C15u64);
+        for _ in 0..40 {
+            x = &x * BigInt::from(0x9E37_79B9_7F4A_7C15u64) + BigInt::from(12_345);
+            values.push(x.clone());
+            values.push(-x.clone());
+        }
+        for v in &values {
+            assert_eq!(
+                balanced_digits(v, p),
+                balanced_digits_reference(v, p),
+                "{v}"
+            );
         }
     }
 
